@@ -1,0 +1,52 @@
+"""One exception hierarchy for everything the tool reports to a user.
+
+Every message names where the problem is (file, dataset or config key), what was
+found and what was expected, so a user can fix the input without reading code.
+"""
+
+from __future__ import annotations
+
+
+class MovieprocError(Exception):
+    """Base class of all errors raised by movieproc on bad input or state."""
+
+
+class InputError(MovieprocError):
+    """A run file, structure file or other input does not meet its contract.
+
+    Parameters
+    ----------
+    source : str
+        File (and, where known, dataset or frame) where the problem is.
+    found : str
+        What was found.
+    expected : str
+        What the contract expects.
+    """
+
+    def __init__(self, source: str, found: str, expected: str):
+        self.source, self.found, self.expected = str(source), found, expected
+        super().__init__(f"{source}: found {found}; expected {expected}")
+
+
+class ConfigError(MovieprocError):
+    """A configuration value is missing, of the wrong type or inconsistent.
+
+    Parameters
+    ----------
+    key : str
+        Dotted config key, e.g. ``binning.width``.
+    found : str
+        What was found.
+    expected : str
+        What is expected.
+    """
+
+    def __init__(self, key: str, found: str, expected: str):
+        self.key, self.found, self.expected = key, found, expected
+        super().__init__(f"config key '{key}': found {found}; expected {expected}")
+
+
+class DataError(MovieprocError):
+    """The data, though well-formed, cannot give a meaningful result
+    (no pump-off shots, every shot cut, too few delays for a fit...)."""
