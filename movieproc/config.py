@@ -1,0 +1,153 @@
+"""Loading, overriding and validating the configuration.
+
+The config is one YAML file checked against ``config/schemas/config.schema.yaml``
+(JSON Schema draft 2020-12, with the detector section in
+``detector.schema.yaml``). Validation fills in defaults, so stages can rely on
+every key being present. Command-line overrides are ``dotted.key=value`` strings
+whose values are parsed as YAML; they are validated like the file and recorded
+under ``provenance.overrides``.
+"""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+
+import jsonschema
+import yaml
+
+from .errors import ConfigError
+
+ROOT = Path(__file__).resolve().parents[1]
+SCHEMA_DIR = ROOT / "config" / "schemas"
+DEFAULT_CONFIG = ROOT / "config" / "config.yaml"
+
+
+def load_schema() -> dict:
+    """The full config schema, detector section merged in."""
+    schema = yaml.safe_load((SCHEMA_DIR / "config.schema.yaml").read_text())
+    extra = SCHEMA_DIR / "detector.schema.yaml"
+    if extra.exists():
+        schema["properties"]["detector"] = yaml.safe_load(extra.read_text())
+    for name in ("analysis.schema.yaml",):
+        part = SCHEMA_DIR / name
+        if part.exists():
+            schema["properties"].update(yaml.safe_load(part.read_text())["properties"])
+    return schema
+
+
+def parse_override(text: str):
+    """Split ``dotted.key=value`` into (['dotted', 'key'], parsed value)."""
+    if "=" not in text:
+        raise ConfigError(text, "no '='", "an override of the form dotted.key=value")
+    key, _, raw = text.partition("=")
+    key = key.strip()
+    if not key or any(not part for part in key.split(".")):
+        raise ConfigError(key, "an empty key part", "dotted.key=value")
+    try:
+        value = yaml.safe_load(raw)
+    except yaml.YAMLError as exc:
+        raise ConfigError(key, f"a value YAML cannot parse ({raw!r}: {exc})", "a YAML value") from None
+    return key.split("."), value
+
+
+def apply_overrides(config: dict, overrides) -> dict:
+    """Return a copy of ``config`` with ``dotted.key=value`` overrides applied."""
+    config = copy.deepcopy(config)
+    for text in overrides or ():
+        parts, value = parse_override(text)
+        node = config
+        for i, part in enumerate(parts[:-1]):
+            child = node.get(part)
+            if child is None:
+                child = node[part] = {}
+            elif not isinstance(child, dict):
+                raise ConfigError(".".join(parts[: i + 1]), f"a {type(child).__name__} value",
+                                  f"a section, to set '{'.'.join(parts)}'")
+            node = child
+        node[parts[-1]] = value
+    if overrides:
+        prov = config.setdefault("provenance", {}) or {}
+        config["provenance"] = prov
+        prov["overrides"] = list(prov.get("overrides", [])) + list(overrides)
+    return config
+
+
+def _extend_with_default(validator_class):
+    validate_properties = validator_class.VALIDATORS["properties"]
+
+    def set_defaults(validator, properties, instance, schema):
+        if isinstance(instance, dict):
+            for name, sub in properties.items():
+                if "default" in sub and name not in instance:
+                    instance[name] = copy.deepcopy(sub["default"])
+        yield from validate_properties(validator, properties, instance, schema)
+
+    return jsonschema.validators.extend(validator_class, {"properties": set_defaults})
+
+
+_Validator = _extend_with_default(jsonschema.Draft202012Validator)
+
+
+def validate(config: dict) -> dict:
+    """Validate a config against the schema and fill in defaults.
+
+    Returns a new dict; raises :class:`ConfigError` naming the first bad key.
+    """
+    config = copy.deepcopy(config or {})
+    validator = _Validator(load_schema())
+    errors = sorted(validator.iter_errors(config), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    if errors:
+        err = errors[0]
+        key = ".".join(str(p) for p in err.absolute_path) or "(top level)"
+        if err.validator == "additionalProperties":
+            extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
+            raise ConfigError(".".join(filter(None, [key if key != "(top level)" else "", extra[0] if extra else ""])),
+                              "an unknown key", f"one of {sorted(err.schema.get('properties', {}))}")
+        if err.validator == "required":
+            raise ConfigError(key, err.message, "the required key to be present")
+        raise ConfigError(key, f"{err.instance!r}", _expected(err))
+    _check_consistency(config)
+    return config
+
+
+def _expected(err) -> str:
+    s = err.schema
+    if err.validator == "type":
+        return f"a value of type {s['type']}"
+    if err.validator == "enum":
+        return f"one of {s['enum']}"
+    if err.validator in ("minimum", "exclusiveMinimum", "maximum", "exclusiveMaximum"):
+        return f"a value with {err.validator} {s[err.validator]}"
+    if err.validator in ("minItems", "maxItems"):
+        return f"a list with {err.validator} {s[err.validator]}"
+    return err.message
+
+
+def _check_consistency(config: dict):
+    b = config.get("binning", {})
+    if b.get("mode") == "edges":
+        edges = b.get("edges_ps")
+        if not edges:
+            raise ConfigError("binning.edges_ps", "no edges", "a list of at least two increasing edges (ps) in edges mode")
+        if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:])):
+            raise ConfigError("binning.edges_ps", f"{edges}", "strictly increasing edges")
+    lo, hi = config.get("differences", {}).get("norm_q_range", [0, 1])
+    if hi <= lo:
+        raise ConfigError("differences.norm_q_range", f"[{lo}, {hi}]", "[low, high] with low < high (1/Å)")
+
+
+def load(path=None, overrides=None) -> dict:
+    """Read a config file (default: the demo config), apply overrides, validate."""
+    path = Path(path) if path else DEFAULT_CONFIG
+    if not path.exists():
+        raise ConfigError("--config", f"no file {path}", "a YAML config file")
+    try:
+        raw = yaml.safe_load(path.read_text()) or {}
+    except yaml.YAMLError as exc:
+        raise ConfigError(str(path), f"YAML that does not parse ({exc})", "a YAML mapping") from None
+    if not isinstance(raw, dict):
+        raise ConfigError(str(path), f"a {type(raw).__name__}", "a YAML mapping at the top level")
+    raw = apply_overrides(raw, overrides)
+    raw.setdefault("provenance", {})["config_file"] = str(path)
+    return validate(raw)

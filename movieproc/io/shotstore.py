@@ -1,0 +1,120 @@
+"""The per-shot store (``shots.zarr``): curves and the shot table of a run.
+
+Written once by the ``ingest`` stage (pre-integrated curves) or the
+``integrate`` stage (detector frames); read by every later stage. Layout:
+
+=================  ============  ==========  =====================================
+array              dims          dtype       meaning
+=================  ============  ==========  =====================================
+q                  (q)           float64     momentum transfer, 1/Å
+curves             (shot, q)     float32     isotropic I(q) per shot, detector units
+pulse_id ...       (shot)        per field   the shot table (see io.runfile)
+=================  ============  ==========  =====================================
+
+Further per-shot curve arrays (e.g. an anisotropic component) may be present
+with dims (shot, q). Group attrs hold the run files, their checksums and the
+settings that produced the store.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import store
+from .runfile import SHOT_FIELDS
+
+
+def file_checksum(path, algorithm: str = "sha256") -> str:
+    """Hex digest of a whole file, read in 16 MiB blocks."""
+    h = hashlib.new(algorithm)
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 24), b""):
+            h.update(block)
+    return f"{algorithm}:{h.hexdigest()}"
+
+
+def create(path, q, table, chunk_shots, curve_arrays=None, attrs=None):
+    """Create a shots store with its table written and empty curve arrays.
+
+    Parameters
+    ----------
+    path : path
+        Store to create (normally a temporary path inside ``store.atomic_path``).
+    q : ndarray (nq,)
+        q axis, 1/Å.
+    table : dict of str -> ndarray (N,)
+        The shot table.
+    chunk_shots : int
+        Shots per chunk of the curve arrays.
+    curve_arrays : dict of str -> str, optional
+        Names and units of per-shot curve arrays to create (default
+        ``{"curves": "detector units"}``).
+    attrs : dict, optional
+        Group attributes (provenance).
+
+    Returns
+    -------
+    zarr.Group
+    """
+    curve_arrays = curve_arrays or {"curves": "detector units"}
+    n = len(table["pulse_id"])
+    group = store.new_group(path, attrs)
+    store.write_array(group, "q", np.asarray(q, dtype=np.float64), ["q"], units="1/Å")
+    for name, values in table.items():
+        units = SHOT_FIELDS.get(name, (None, None))[1]
+        store.write_array(group, name, values, ["shot"], units=units,
+                          chunks=(max(1, min(n, 1 << 20)),))
+    for name, units in curve_arrays.items():
+        store.create_array(group, name, (n, len(q)), ["shot", "q"], "float32",
+                           chunks=(max(1, min(chunk_shots, n)), len(q)), units=units)
+    return group
+
+
+@dataclass
+class ShotStore:
+    """Read access to a shots store.
+
+    Attributes
+    ----------
+    path : Path
+    group : zarr.Group
+    q : ndarray (nq,) float64, 1/Å
+    table : dict of str -> ndarray (N,)
+    chunk : int
+        Shots per stored chunk: the natural unit of streaming.
+    """
+
+    path: Path
+    group: object
+    q: np.ndarray
+    table: dict
+    chunk: int
+
+    @property
+    def n_shots(self) -> int:
+        return len(self.table["pulse_id"])
+
+    def curves(self, start: int, stop: int, name: str = "curves") -> np.ndarray:
+        """Per-shot curves of shots [start, stop), float32 (n, nq)."""
+        return self.group[name][start:stop]
+
+    def has(self, name: str) -> bool:
+        return name in self.group
+
+
+def open_shots(path) -> ShotStore:
+    """Open a shots store written by ``ingest`` or ``integrate``."""
+    path = Path(path)
+    group = store.open_group(path, "shots store")
+    q = store.read(group, "q", path)
+    table = {name: group[name][...] for name in SHOT_FIELDS if name in group}
+    if "curves" not in group:
+        from ..errors import InputError
+
+        raise InputError(f"{path}:curves", "no such array", "per-shot curves (shot, q)")
+    chunk = int(group["curves"].chunks[0])
+    return ShotStore(path=path, group=group, q=q, table=table, chunk=chunk)

@@ -1,0 +1,164 @@
+"""Labelled zarr v3 stores: every array carries dimension names and units.
+
+Stores written here open with ``xarray.open_zarr(path, consolidated=False)``
+with named dimensions; coordinate arrays are named after their dimension.
+Writes are atomic: a store is built in a temporary sibling folder and renamed
+into place, so an interrupted run never leaves a half-written store under the
+final name.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import shutil
+import uuid
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from ..errors import InputError
+
+
+@contextlib.contextmanager
+def atomic_path(path):
+    """Yield a temporary sibling path; on success rename it to ``path``.
+
+    An existing ``path`` is replaced only after the new content is complete.
+    On any exception the temporary is removed and ``path`` is left untouched.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{uuid.uuid4().hex[:8]}")
+    try:
+        yield tmp
+        if path.exists():
+            old = path.with_name(f".{path.name}.old-{uuid.uuid4().hex[:8]}")
+            os.replace(path, old)
+            os.replace(tmp, path)
+            _remove(old)
+        else:
+            os.replace(tmp, path)
+    finally:
+        _remove(tmp)
+
+
+def _remove(p: Path):
+    if p.is_dir():
+        shutil.rmtree(p, ignore_errors=True)
+    elif p.exists():
+        p.unlink()
+
+
+def _jsonable(value):
+    """Convert numpy scalars/arrays and paths inside attrs to JSON types."""
+    return json.loads(json.dumps(value, default=_default))
+
+
+def _default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"cannot store {type(o).__name__} in attrs")
+
+
+def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dtype=None):
+    """Write a numpy array into ``group`` with dimension names and units.
+
+    Parameters
+    ----------
+    group : zarr.Group
+        Open, writable group.
+    name : str
+        Array name.
+    data : array_like
+        Values to write.
+    dims : sequence of str
+        One dimension name per axis of ``data``.
+    units : str, optional
+        Stored as ``attrs['units']``.
+    chunks : tuple of int, optional
+        Chunk shape; default one chunk (or zarr's choice for large arrays).
+    attrs : dict, optional
+        Further attributes (JSON-serialisable).
+    dtype : numpy dtype, optional
+        Storage dtype; default that of ``data``.
+    """
+    data = np.asarray(data) if dtype is None else np.asarray(data, dtype=dtype)
+    if data.ndim != len(dims):
+        raise ValueError(f"array '{name}' has {data.ndim} axes but {len(dims)} dimension names")
+    if data.dtype == bool:
+        fill = False
+    elif data.dtype.kind in "iu":
+        fill = 0
+    else:
+        fill = np.nan
+    arr = group.create_array(
+        name,
+        shape=data.shape,
+        dtype=data.dtype,
+        chunks=chunks if chunks is not None else (data.shape if data.size and data.nbytes < 2**26 else "auto"),
+        dimension_names=list(dims),
+        fill_value=fill,
+        overwrite=True,
+    )
+    if data.size:
+        arr[...] = data
+    meta = dict(attrs or {})
+    if units is not None:
+        meta["units"] = units
+    if meta:
+        arr.attrs.update(_jsonable(meta))
+    return arr
+
+
+def create_array(group, name, shape, dims, dtype, chunks, units=None, attrs=None):
+    """Create an empty labelled array to be filled chunk by chunk."""
+    arr = group.create_array(
+        name, shape=shape, dtype=dtype, chunks=chunks, dimension_names=list(dims),
+        fill_value=np.nan if np.dtype(dtype).kind == "f" else 0, overwrite=True,
+    )
+    meta = dict(attrs or {})
+    if units is not None:
+        meta["units"] = units
+    if meta:
+        arr.attrs.update(_jsonable(meta))
+    return arr
+
+
+def new_group(path, attrs=None):
+    """Create a new zarr v3 group at ``path`` (which must not exist yet)."""
+    group = zarr.open_group(str(path), mode="w", zarr_format=3)
+    if attrs:
+        group.attrs.update(_jsonable(attrs))
+    return group
+
+
+def open_group(path, what="store"):
+    """Open an existing zarr group read-only, with a clear error if absent."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(path, "no such store", f"a zarr {what} written by an earlier stage")
+    try:
+        return zarr.open_group(str(path), mode="r")
+    except Exception as exc:  # zarr raises several types for non-stores
+        raise InputError(path, f"not a readable zarr group ({exc})", f"a zarr {what}") from exc
+
+
+def read(group, name, source=None):
+    """Read a whole array from a group, naming the store on a missing key."""
+    try:
+        return group[name][...]
+    except KeyError:
+        raise InputError(f"{source or group.store}:{name}", "no such array",
+                         "an array written by the producing stage") from None
+
+
+def update_attrs(obj, attrs):
+    """Update zarr attrs with JSON-safe values."""
+    obj.attrs.update(_jsonable(attrs))

@@ -1,0 +1,243 @@
+"""Delay bins and streamed per-bin sums.
+
+Bins follow numpy's histogram convention: ``[e_k, e_{k+1})`` for all but the last
+bin, which also holds its right edge. Shots with a NaN delay or a delay outside
+the edges get index -1 and are counted, never silently lost.
+
+:func:`accumulate` is the streaming core: it adds one chunk of per-shot values
+into per-bin count, sum and sum of squares in float64, so a run of any length is
+reduced chunk by chunk without holding all shots in memory.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from ..errors import ConfigError, DataError
+
+
+def fixed_width_edges(delay, width, start=None, stop=None):
+    """Edges of fixed-width bins, ps.
+
+    Parameters
+    ----------
+    delay : array_like (N,)
+        Delays used for the default range (NaNs ignored).
+    width : float
+        Bin width, ps (> 0).
+    start, stop : float, optional
+        First and last edge; default the finite delay range, with ``stop``
+        extended to a whole number of bins.
+    """
+    if not width > 0:
+        raise ConfigError("binning.width_ps", f"{width}", "a positive width in ps")
+    finite = np.asarray(delay, float)
+    finite = finite[np.isfinite(finite)]
+    if start is None or stop is None:
+        if finite.size == 0:
+            raise DataError("no shot has a finite corrected delay: cannot choose a bin range")
+        start = float(finite.min()) if start is None else start
+        stop = float(finite.max()) if stop is None else stop
+    if not stop > start:
+        raise ConfigError("binning.stop_ps", f"{stop}", f"a value above binning.start_ps = {start}")
+    n = int(np.ceil((stop - start) / width - 1e-9))
+    return start + width * np.arange(max(n, 1) + 1)
+
+
+def population_edges(delay, count):
+    """Edges of ``count`` bins holding (nearly) equal numbers of shots.
+
+    Edges are quantiles of the finite delays; the outer edges are the extreme
+    delays, so every finite delay falls in a bin. Ties can make bins unequal.
+    """
+    d = np.asarray(delay, float)
+    d = d[np.isfinite(d)]
+    if d.size < count:
+        raise DataError(f"{d.size} shots with finite delay cannot fill {count} equal-population bins")
+    edges = np.quantile(d, np.linspace(0.0, 1.0, count + 1))
+    edges = np.unique(edges)
+    if edges.size < 2:
+        raise DataError("all delays are equal: equal-population bins need a spread of delays")
+    return edges
+
+
+def make_edges(delay, binning: dict):
+    """Bin edges (ps) from the ``binning`` config section.
+
+    Parameters
+    ----------
+    delay : ndarray (N,)
+        Corrected delays of the shots to be binned, ps.
+    binning : dict
+        Keys ``mode`` (width | population | edges), ``width_ps``,
+        ``start_ps``, ``stop_ps``, ``count``, ``edges_ps``.
+    """
+    mode = binning.get("mode", "width")
+    if mode == "width":
+        return fixed_width_edges(delay, binning["width_ps"], binning.get("start_ps"), binning.get("stop_ps"))
+    if mode == "population":
+        return population_edges(delay, int(binning["count"]))
+    if mode == "edges":
+        edges = np.asarray(binning.get("edges_ps"), float)
+        if edges.ndim != 1 or edges.size < 2 or np.any(np.diff(edges) <= 0):
+            raise ConfigError("binning.edges_ps", f"{binning.get('edges_ps')}", "at least two strictly increasing edges")
+        return edges
+    raise ConfigError("binning.mode", repr(mode), "one of width, population, edges")
+
+
+def assign_bins(delay, edges):
+    """Bin index of each delay, -1 for NaN or outside the edges.
+
+    Parameters
+    ----------
+    delay : array_like (N,)
+        Delays, ps.
+    edges : array_like (nbins + 1,)
+        Increasing edges, ps.
+
+    Returns
+    -------
+    ndarray (N,) int64
+    """
+    delay = np.asarray(delay, float)
+    edges = np.asarray(edges, float)
+    idx = np.searchsorted(edges, delay, side="right") - 1
+    idx[delay == edges[-1]] = edges.size - 2  # last bin is closed on the right
+    bad = ~np.isfinite(delay) | (idx < 0) | (idx > edges.size - 2)
+    idx[bad] = -1
+    return idx.astype(np.int64)
+
+
+@dataclass
+class DelayBins:
+    """Per-bin delay statistics.
+
+    Attributes
+    ----------
+    edges : ndarray (nbins + 1,), ps
+    index : ndarray (N,) int64, bin of each shot (-1: not binned)
+    count : ndarray (nbins,) int64
+    mean : ndarray (nbins,) float64, mean delay of the shots in each bin, ps (NaN if empty)
+    std : ndarray (nbins,) float64, spread (standard deviation) of the delays, ps
+    n_nan : int, shots dropped for a NaN delay
+    n_outside : int, shots dropped for a delay outside the edges
+    """
+
+    edges: np.ndarray
+    index: np.ndarray
+    count: np.ndarray
+    mean: np.ndarray
+    std: np.ndarray
+    n_nan: int
+    n_outside: int
+
+
+def bin_delays(delay, edges) -> DelayBins:
+    """Assign delays to bins and compute per-bin count, mean and spread."""
+    delay = np.asarray(delay, float)
+    edges = np.asarray(edges, float)
+    index = assign_bins(delay, edges)
+    nb = edges.size - 1
+    ok = index >= 0
+    count = np.bincount(index[ok], minlength=nb).astype(np.int64)
+    s1 = np.bincount(index[ok], weights=delay[ok], minlength=nb)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(count > 0, s1 / np.maximum(count, 1), np.nan)
+        dev = delay[ok] - mean[index[ok]]
+        var = np.bincount(index[ok], weights=dev * dev, minlength=nb) / np.maximum(count, 1)
+    std = np.where(count > 0, np.sqrt(var), np.nan)
+    n_nan = int(np.sum(~np.isfinite(delay)))
+    return DelayBins(edges=edges, index=index, count=count, mean=mean, std=std,
+                     n_nan=n_nan, n_outside=int(np.sum(~ok)) - n_nan)
+
+
+@numba.njit(nogil=True, cache=True)
+def _accumulate(index, values, counts, sums, sumsq):
+    n, m = values.shape
+    for i in range(n):
+        b = index[i]
+        if b < 0:
+            continue
+        counts[b] += 1
+        srow = sums[b]
+        qrow = sumsq[b]
+        for j in range(m):
+            v = np.float64(values[i, j])
+            srow[j] += v
+            qrow[j] += v * v
+
+
+@dataclass
+class BinSums:
+    """Per-bin count, sum and sum of squares of per-shot values (float64).
+
+    Attributes
+    ----------
+    count : ndarray (nbins,) int64
+    sum : ndarray (nbins, m) float64
+    sumsq : ndarray (nbins, m) float64
+    """
+
+    count: np.ndarray
+    sum: np.ndarray
+    sumsq: np.ndarray
+
+    @classmethod
+    def zeros(cls, nbins, m):
+        return cls(np.zeros(nbins, np.int64), np.zeros((nbins, m)), np.zeros((nbins, m)))
+
+    def __add__(self, other):
+        return BinSums(self.count + other.count, self.sum + other.sum, self.sumsq + other.sumsq)
+
+    def mean(self):
+        """Per-bin mean (nbins, m); NaN for empty bins."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.count[:, None] > 0, self.sum / self.count[:, None], np.nan)
+
+    def variance(self):
+        """Per-bin sample variance (ddof=1) (nbins, m); NaN below two shots."""
+        n = self.count[:, None].astype(float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            var = (self.sumsq - self.sum * self.sum / n) / (n - 1)
+        var = np.where(n > 1, np.maximum(var, 0.0), np.nan)
+        return var
+
+    def sem(self):
+        """Per-bin standard error of the mean (nbins, m), assuming independent shots."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.sqrt(self.variance() / self.count[:, None])
+
+
+def accumulate(index, values, nbins, into=None) -> BinSums:
+    """Add per-shot values into per-bin sums (the streaming binning core).
+
+    Parameters
+    ----------
+    index : array_like (n,) int
+        Bin of each shot; negative entries are skipped.
+    values : array_like (n, m)
+        Per-shot values (float32 or float64), e.g. difference curves.
+    nbins : int
+        Number of bins.
+    into : BinSums, optional
+        Sums to add to (modified in place and returned); default new zeros.
+
+    Returns
+    -------
+    BinSums
+        Float64 sums, whatever the input dtype.
+    """
+    values = np.ascontiguousarray(values)
+    if values.ndim != 2:
+        raise ValueError("values must be (n, m)")
+    index = np.ascontiguousarray(index, dtype=np.int64)
+    if index.shape[0] != values.shape[0]:
+        raise ValueError("index and values differ in length")
+    if np.any(index >= nbins):
+        raise ValueError("bin index beyond nbins")
+    out = into if into is not None else BinSums.zeros(nbins, values.shape[1])
+    _accumulate(index, values, out.count, out.sum, out.sumsq)
+    return out
