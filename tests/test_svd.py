@@ -1,0 +1,116 @@
+"""Tests of movieproc.signals.svd: decomposition and component counting on seeded synthetic maps."""
+
+import numpy as np
+import pytest
+
+from movieproc.errors import InputError
+from movieproc.signals import svd as msvd
+
+DELAY = np.concatenate([np.linspace(-1.0, 2.0, 16), np.logspace(0.4, 2.5, 28)])  # ps
+Q = np.linspace(0.5, 4.0, 150)  # 1/Å
+
+
+def profiles():
+    """Three smooth, linearly independent temporal profiles (sequential-like) and q curves."""
+    t = np.clip(DELAY, 0, None)
+    on = (DELAY > 0).astype(float)
+    c = np.stack([np.exp(-t / 3.0) * on,
+                  (np.exp(-t / 40.0) - np.exp(-t / 3.0)) * on,
+                  (1 - np.exp(-t / 40.0)) * on], axis=1)
+    b = np.stack([np.sinc(Q * 2.8 / np.pi) - np.sinc(Q * 3.0 / np.pi),
+                  np.exp(-((Q - 2.0) / 0.4) ** 2) - 0.5 * np.exp(-((Q - 3.0) / 0.3) ** 2),
+                  np.cos(1.3 * Q) * np.exp(-Q / 3.0)], axis=0)
+    return c, b
+
+
+def synthetic(n_true, noise_sd, rng, amp=(100.0, 80.0, 60.0)):
+    c, b = profiles()
+    # Scale each rank-1 term to Frobenius norm amp_k * (noise units): 3-5 times the noise
+    # edge sqrt(n_delay) + sqrt(n_q) ~ 19 (Marchenko-Pastur largest singular value). Both
+    # criteria need this margin: a singular vector carries noise ~1/s per entry against
+    # signal entries ~1/sqrt(150), so at s ~ 30 the q-space vectors' autocorrelation
+    # falls to ~0.78 (measured on these profiles) and the component is rightly not
+    # counted as resolved.
+    D = np.zeros((DELAY.size, Q.size))
+    for k in range(n_true):
+        term = np.outer(c[:, k], b[k])
+        D += amp[k] * term / np.linalg.norm(term)
+    sd = np.broadcast_to(noise_sd, D.shape)
+    return D * sd + rng.standard_normal(D.shape) * sd, sd
+
+
+def test_svd_reconstructs_and_orthonormal():
+    rng = np.random.default_rng(0)
+    D = rng.normal(size=(12, 30))
+    w = rng.uniform(0.5, 2, size=D.shape)
+    u, s, vt = msvd.svd(D, w)
+    np.testing.assert_allclose(u.T @ u, np.eye(12), atol=1e-12)
+    np.testing.assert_allclose(vt @ vt.T, np.eye(12), atol=1e-12)
+    # Full reconstruction returns the data (numpy's SVD to rounding).
+    np.testing.assert_allclose(msvd.reconstruct(u, s, vt, 12, w), D, atol=1e-12)
+    # Singular values agree with an independent routine: scipy.linalg.svdvals.
+    from scipy.linalg import svdvals
+    np.testing.assert_allclose(s, svdvals(D * w), rtol=1e-12)
+    assert not np.shares_memory(u, D)
+
+
+def test_lag1_autocorrelation_closed_form():
+    # For x_j = sin(omega j + phi) over many periods, sum x_j x_{j+1} / sum x_j^2 -> cos(omega)
+    # (product-to-sum identity); with N = 20000 samples the end effects are O(1/N).
+    j = np.arange(20000)
+    for omega in [0.05, 0.5, 2.0]:
+        x = np.sin(omega * j + 0.3)
+        assert msvd.lag1_autocorrelation(x) == pytest.approx(np.cos(omega), abs=1e-3)
+    # White noise: expectation 0, standard deviation 1/sqrt(N) = 0.007 -> |r| < 0.04 (5.6 sd).
+    rng = np.random.default_rng(3)
+    assert abs(msvd.lag1_autocorrelation(rng.normal(size=20000))) < 0.04
+
+
+@pytest.mark.parametrize("n_true", [1, 2, 3])
+def test_count_from_errors(n_true):
+    rng = np.random.default_rng(100 + n_true)
+    # Errors varying 10-fold across q: with weights 1/err the noise is white again.
+    err = 0.2 + 1.8 * (Q / Q.max()) ** 2
+    D, sd = synthetic(n_true, err, rng)
+    res = msvd.count_components(D, err=sd, rng=np.random.default_rng(7))
+    assert res.n == n_true, (res.s[:5], res.threshold, res.autocorr_u[:5], res.autocorr_v[:5])
+    assert np.all(res.significant[:n_true]) and not res.significant[n_true]
+    assert res.warnings == []
+
+
+@pytest.mark.parametrize("n_true", [1, 2, 3])
+def test_count_from_noise_maps(n_true):
+    rng = np.random.default_rng(200 + n_true)
+    D, sd = synthetic(n_true, 1.0, rng)
+    # Off-minus-off map of the same shape: used directly.
+    off = rng.standard_normal(D.shape)
+    assert msvd.count_components(D, noise=off).n == n_true
+    # Eight negative-delay rows: per-q spread, synthesised maps.
+    neg = rng.standard_normal((8, Q.size))
+    res = msvd.count_components(D, noise=neg, rng=np.random.default_rng(1))
+    assert res.n == n_true
+    assert "8-row" in res.noise_source
+
+
+def test_weak_component_not_counted_and_smoothness_required():
+    rng = np.random.default_rng(5)
+    # Third component at Frobenius norm 8 < noise edge ~19: it cannot be resolved.
+    D, sd = synthetic(3, 1.0, rng, amp=(60.0, 40.0, 8.0))
+    assert msvd.count_components(D, err=sd, rng=np.random.default_rng(2)).n == 2
+    # A strong but rough component (white q-space vector) fails the smoothness test.
+    c, _ = profiles()
+    rough = np.outer(c[:, 0], rng.standard_normal(Q.size))
+    D2 = 60 * rough / np.linalg.norm(rough) + rng.standard_normal(rough.shape)
+    res = msvd.count_components(D2, err=np.ones_like(D2), rng=np.random.default_rng(2))
+    assert res.significant[0] and not res.smooth[0] and res.n == 0
+    assert any("not smooth" in w for w in res.warnings)
+
+
+def test_count_input_errors():
+    D = np.ones((5, 6))
+    with pytest.raises(InputError):
+        msvd.count_components(D)                       # no noise reference
+    with pytest.raises(InputError):
+        msvd.count_components(D, err=np.ones((5, 6)))  # synthesis needs a Generator
+    with pytest.raises(InputError):
+        msvd.count_components(D, noise=np.ones((3, 4)))
