@@ -1,0 +1,81 @@
+"""Stage ``assemble``: the delay-indexed movie (zarr v3, xarray-readable).
+
+Collects the binned differences, the selection counts, any analysis results
+(solvent terms, fits, structures) and the provenance into one store that
+``xarray.open_zarr(path, consolidated=False)`` opens with named dimensions.
+"""
+
+from __future__ import annotations
+
+import logging
+
+from ..io import store
+from .common import now, versions
+
+log = logging.getLogger("movieproc.assemble")
+
+SAFETY = ("movieproc analyses recorded data. It does not set beam, laser or safety parameters; "
+          "local rules and the facility's safety staff decide those.")
+
+CONVENTIONS = {
+    "delay": "ps; positive = probe after pump; corrected delay = stage_delay - time_zero + sign * timing correction",
+    "q": "1/Å, q = 4 pi sin(theta) / lambda, 2 theta the scattering angle",
+    "difference": "pump-on minus the mean of the k nearest pump-off shots, each curve normalized first",
+}
+
+
+def _copy_group(src, dst, skip=()):
+    """Copy every array of a zarr group (with dims and attrs) into another group."""
+    for name, arr in src.arrays():
+        if name in skip or name in dst:
+            continue
+        dims = arr.metadata.dimension_names
+        store.write_array(dst, name, arr[...], dims, attrs=dict(arr.attrs))
+
+
+def run(binned_path, selection_path, shots_path, out, config: dict, extra=()):
+    """Write the movie store ``out``.
+
+    Parameters
+    ----------
+    binned_path, selection_path, shots_path : path
+        Stores of the ``difference``, ``select`` and ``ingest`` stages.
+    out : path
+        Movie store to write.
+    config : dict
+        The full validated config (stored in the attrs).
+    extra : sequence of path
+        Further stores (analysis results) whose arrays are added as they are.
+    """
+    binned = store.open_group(binned_path, "binned store")
+    sel = store.open_group(selection_path, "selection")
+    shots = store.open_group(shots_path, "shots store")
+    warnings = list(shots.attrs.get("warnings", [])) + list(sel.attrs.get("warnings", [])) + \
+        list(binned.attrs.get("warnings", []))
+    extras = [store.open_group(p, "analysis store") for p in extra]
+    for g in extras:
+        warnings += list(g.attrs.get("warnings", []))
+    attrs = {
+        "title": f"movie of run '{config['run']['name']}'",
+        "config": config,
+        "input_files": shots.attrs.get("files", []),
+        "input_checksums": shots.attrs.get("checksums", {}),
+        "input_mode": shots.attrs.get("mode"),
+        "selection_counts": dict(sel.attrs.get("counts", {})),
+        "references_per_shot": binned.attrs.get("references_per_shot"),
+        "versions": versions(),
+        "written": now(),
+        "conventions": CONVENTIONS,
+        "warnings": warnings,
+        "safety": SAFETY,
+    }
+    for g in extras:
+        attrs.update({k: v for k, v in g.attrs.items() if k not in ("warnings", "written")})
+    with store.atomic_path(out) as tmp:
+        movie = store.new_group(tmp, attrs)
+        _copy_group(binned, movie)
+        for g in extras:
+            _copy_group(g, movie)
+    log.info("movie written to %s (%d warnings)", out, len(warnings))
+    for w in warnings:
+        log.info("  %s", w)

@@ -1,0 +1,115 @@
+"""Stage ``difference``: per-bin pump-on minus pump-off differences with honest errors.
+
+Streams the shots store chunk by chunk: normalizes each curve, references each
+binned pump-on shot to the mean of its k nearest kept pump-off shots, and
+accumulates per-bin float64 sums. Never holds all shots' curves in memory.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+from ..io import shotstore, store
+from ..parallel import map_ranges
+from ..shots.binning import BinSums, accumulate
+from ..signals.differences import bin_errors, nearest_references, shared_reference_factor
+from ..signals.normalize import normalize
+from .common import Warnings, now
+
+log = logging.getLogger("movieproc.difference")
+
+
+def run(shots_path, selection_path, bins_path, out, config: dict):
+    """Write ``binned.zarr``: diff, diff_err, diff_noise, on_mean, off_mean per (delay, q).
+
+    ``diff_noise`` is a noise-only map of the same statistics: half the
+    difference between the mean differences of two interleaved halves of each
+    bin's shots, scaled to the full bin's standard error.
+    """
+    dcfg, compute, binning = config["differences"], config["compute"], config["binning"]
+    warnings = Warnings("difference", log)
+    shots = shotstore.open_shots(shots_path)
+    keep = store.read(store.open_group(selection_path, "selection"), "keep", selection_path)
+    bg = store.open_group(bins_path, "bins")
+    index = store.read(bg, "index", bins_path)
+    edges = store.read(bg, "edges", bins_path)
+    nb, nq = edges.size - 1, shots.q.size
+    on = index >= 0
+    off = keep & ~shots.table["pump_on"]
+    k = dcfg["references"]
+    refs, gap = nearest_references(shots.table["pulse_id"], on, off, k)
+    on_idx = np.flatnonzero(on)
+    on_bin = index[on_idx]
+    # alternate shots of each bin go to halves A and B (for the noise-only map)
+    order_in_bin = np.zeros(on_idx.size, np.int64)
+    for b in np.unique(on_bin):
+        sel = np.flatnonzero(on_bin == b)
+        order_in_bin[sel] = np.arange(sel.size)
+    half_a = np.where(order_in_bin % 2 == 0, on_bin, -1)
+    if dcfg["max_reference_gap"] is not None:
+        far = int(np.sum(gap > dcfg["max_reference_gap"]))
+        if far:
+            warnings.add(f"{far} pump-on shots have a reference more than {dcfg['max_reference_gap']} pulse ids away")
+    shared = shared_reference_factor(on_bin, refs, nb)
+    mode, qr = dcfg["normalization"], dcfg["norm_q_range"]
+    chunk = compute["chunk_shots"]
+    ranges = [(a, min(a + chunk, on_idx.size)) for a in range(0, on_idx.size, chunk)]
+
+    def work(a, b):
+        idx, r = on_idx[a:b], refs[a:b]
+        lo = int(min(idx.min(), r.min()))
+        hi = int(max(idx.max(), r.max())) + 1
+        rows = np.unique(np.concatenate([idx, r.ravel()]))
+        block = shots.curves(lo, hi)[rows - lo]
+        norm = normalize(block, shots.q, mode, qr)
+        pos_on = np.searchsorted(rows, idx)
+        pos_ref = np.searchsorted(rows, r)
+        c_on = norm[pos_on]
+        c_ref = norm[pos_ref].mean(axis=1, dtype=np.float64)
+        d = c_on - c_ref
+        return (accumulate(on_bin[a:b], d, nb), accumulate(half_a[a:b], d, nb),
+                accumulate(on_bin[a:b], c_on, nb), accumulate(on_bin[a:b], c_ref, nb))
+
+    parts = map_ranges(work, ranges, compute["workers"], compute["scheduler"], compute["progress"], "difference")
+    total = [BinSums.zeros(nb, nq) for _ in range(4)]
+    for p in parts:
+        total = [t + x for t, x in zip(total, p)]
+    dsum, dsum_a, onsum, refsum = total
+    count = dsum.count
+    diff = dsum.mean()
+    err = bin_errors(dsum.variance(), count, k, shared)
+    n_a = dsum_a.count[:, None].astype(float)
+    n_b = (count - dsum_a.count)[:, None].astype(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_a = dsum_a.sum / n_a
+        mean_b = (dsum.sum - dsum_a.sum) / n_b
+        noise = (mean_a - mean_b) * np.sqrt(n_a * n_b) / (n_a + n_b)
+    low = count < binning["min_shots"]
+    log.info("differences in %d bins from %d pump-on shots with %d references each; median relative error %.2e",
+             nb, int(count.sum()), k, float(np.nanmedian(err)) if np.isfinite(err).any() else float("nan"))
+    bins_attrs = dict(bg.attrs)
+    units = {"window": "fraction of the normalization-window mean", "total": "fraction of the mean over q",
+             "none": "detector units"}[mode]
+    with store.atomic_path(out) as tmp:
+        g = store.new_group(tmp, {"differences": dcfg, "binning": bins_attrs.get("binning"), "written": now(),
+                                  "warnings": list(bins_attrs.get("warnings", [])) + list(warnings),
+                                  "references_per_shot": k})
+        store.write_array(g, "q", shots.q, ["q"], units="1/Å")
+        store.write_array(g, "delay", store.read(bg, "delay_mean"), ["delay"], units="ps",
+                          attrs={"meaning": "mean corrected delay of the bin's pump-on shots (bin centre if empty)"})
+        store.write_array(g, "delay_edges", edges, ["edge"], units="ps")
+        store.write_array(g, "delay_spread", store.read(bg, "delay_spread"), ["delay"], units="ps")
+        store.write_array(g, "n_shots", count, ["delay"], attrs={"meaning": "pump-on shots in the bin"})
+        store.write_array(g, "low_count", low, ["delay"],
+                          attrs={"meaning": f"fewer than binning.min_shots = {binning['min_shots']} shots"})
+        store.write_array(g, "reference_sharing", shared, ["delay"],
+                          attrs={"meaning": "n * sum of squared reference weights; 1/k when no reference is shared"})
+        store.write_array(g, "diff", diff.astype(np.float32), ["delay", "q"], units=units)
+        store.write_array(g, "diff_err", err.astype(np.float32), ["delay", "q"], units=units,
+                          attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
+        store.write_array(g, "diff_noise", noise.astype(np.float32), ["delay", "q"], units=units,
+                          attrs={"meaning": "noise-only map: scaled difference of interleaved half-bins"})
+        store.write_array(g, "on_mean", onsum.mean().astype(np.float32), ["delay", "q"], units=units)
+        store.write_array(g, "off_mean", refsum.mean().astype(np.float32), ["delay", "q"], units=units)

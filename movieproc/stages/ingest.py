@@ -1,0 +1,59 @@
+"""Stage ``ingest``: run files -> shots store (per-shot curves and shot table).
+
+Curves-mode runs are validated and copied chunk by chunk; frames-mode runs are
+integrated by the ``integrate`` stage, which writes the same store.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+from ..io import runfile, shotstore, store
+from ..parallel import chunk_ranges, map_ranges
+from .common import Warnings, now, versions
+
+log = logging.getLogger("movieproc.ingest")
+
+
+def run(files, out, config: dict):
+    """Read and validate run files and write the shots store ``out``.
+
+    Parameters
+    ----------
+    files : list of str
+        Run files (HDF5, input contract of DESIGN.md section 4).
+    out : path
+        Shots store to write (zarr).
+    config : dict
+        The validated config (sections ``compute`` and, in frames mode, ``detector``).
+    """
+    info = runfile.inspect_run(files)
+    if info.mode == "frames":
+        from . import integrate
+
+        return integrate.run([str(f) for f in info.files], out, config["detector"], config["compute"])
+    compute = config["compute"]
+    warnings = Warnings("ingest", log)
+    table = runfile.read_table(info)
+    log.info("run of %d shots in %d file(s), %d q points (%.3g-%.3g 1/Å)", info.n_shots, len(info.files),
+             info.q.size, info.q[0], info.q[-1])
+    if "photon_energy" in table and not np.all(np.isfinite(table["photon_energy"])):
+        warnings.add("shots/photon_energy has non-finite values; the per-shot photon energy is not used in curves mode")
+    attrs = {
+        "mode": "curves", "files": [str(f) for f in info.files],
+        "checksums": {str(f): shotstore.file_checksum(f) for f in info.files},
+        "counts": info.counts, "written": now(), "versions": versions(), "warnings": warnings,
+    }
+    with store.atomic_path(out) as tmp:
+        group = shotstore.create(tmp, info.q, table, compute["chunk_shots"], attrs=attrs)
+        target = group["curves"]
+
+        def copy(start, stop):
+            target[start:stop] = runfile.read_curves(info, start, stop)
+
+        map_ranges(copy, chunk_ranges(info.n_shots, compute["chunk_shots"]), compute["workers"],
+                   compute["scheduler"], compute["progress"], "ingest")
+        store.update_attrs(group, {"warnings": list(warnings)})
+    log.info("wrote %s", out)
