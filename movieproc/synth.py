@@ -100,11 +100,40 @@ def trajectory(mol: dict):
 
 # ----------------------------------------------------------------------------- solvent
 
+def parse_formula(formula: str) -> dict:
+    """Element counts of a simple chemical formula such as ``C2H4O``."""
+    import re
+
+    counts: dict = {}
+    for sym, num in re.findall(r"([A-Z][a-z]?)(\d*)", formula):
+        counts[sym] = counts.get(sym, 0) + (int(num) if num else 1)
+    return counts
+
+
+def independent_atom_scattering(formula: str, q):
+    """Coherent sum of f0^2 and incoherent scattering of one molecule's free atoms.
+
+    Returns
+    -------
+    coherent, incoherent : ndarray (nq,), e.u.
+    """
+    from .scattering.formfactors import form_factor, incoherent
+
+    coh = np.zeros(np.shape(q))
+    inc = np.zeros(np.shape(q))
+    for sym, n in parse_formula(formula).items():
+        coh += n * form_factor(sym, q) ** 2
+        inc += n * incoherent(sym, q)
+    return coh, inc
+
+
 def solvent_curves(q, solv: dict):
     """Scattering of the invented solvent per solvent molecule, and its heating differentials.
 
-    A smooth form-factor-like background times a structure factor with one
-    Gaussian liquid peak; heating shifts and broadens the peak.
+    The molecule's independent-atom scattering (sum of f0^2, plus incoherent
+    scattering) with one Gaussian liquid peak on the coherent part; heating
+    shifts and broadens the peak. At high q the liquid structure fades and the
+    curve tends to the independent-atom value, as a real liquid's does.
 
     Returns
     -------
@@ -113,10 +142,10 @@ def solvent_curves(q, solv: dict):
     dS_drho : ndarray (nq,), e.u. per molecule per (g/cm^3) at constant temperature
     """
     q = np.asarray(q, float)
-    background = 26.0 ** 2 * np.exp(-0.09 * q ** 2) + 14.0
+    coh, inc = independent_atom_scattering(solv["formula"], q)
 
     def s_of(q0, w):
-        return background * (1.0 + solv["peak_height"] * np.exp(-0.5 * ((q - q0) / w) ** 2))
+        return coh * (1.0 + solv["peak_height"] * np.exp(-0.5 * ((q - q0) / w) ** 2)) + inc
 
     q0, w = solv["peak_q"], solv["peak_width"]
     h = 1e-3

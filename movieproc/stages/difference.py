@@ -22,12 +22,7 @@ log = logging.getLogger("movieproc.difference")
 
 
 def run(shots_path, selection_path, bins_path, out, config: dict):
-    """Write ``binned.zarr``: diff, diff_err, diff_noise, on_mean, off_mean per (delay, q).
-
-    ``diff_noise`` is a noise-only map of the same statistics: half the
-    difference between the mean differences of two interleaved halves of each
-    bin's shots, scaled to the full bin's standard error.
-    """
+    """Write ``binned.zarr``: diff, diff_err, on_mean, off_mean per (delay, q)."""
     dcfg, compute, binning = config["differences"], config["compute"], config["binning"]
     warnings = Warnings("difference", log)
     shots = shotstore.open_shots(shots_path)
@@ -42,12 +37,6 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
     refs, gap = nearest_references(shots.table["pulse_id"], on, off, k)
     on_idx = np.flatnonzero(on)
     on_bin = index[on_idx]
-    # alternate shots of each bin go to halves A and B (for the noise-only map)
-    order_in_bin = np.zeros(on_idx.size, np.int64)
-    for b in np.unique(on_bin):
-        sel = np.flatnonzero(on_bin == b)
-        order_in_bin[sel] = np.arange(sel.size)
-    half_a = np.where(order_in_bin % 2 == 0, on_bin, -1)
     if dcfg["max_reference_gap"] is not None:
         far = int(np.sum(gap > dcfg["max_reference_gap"]))
         if far:
@@ -69,23 +58,17 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
         c_on = norm[pos_on]
         c_ref = norm[pos_ref].mean(axis=1, dtype=np.float64)
         d = c_on - c_ref
-        return (accumulate(on_bin[a:b], d, nb), accumulate(half_a[a:b], d, nb),
-                accumulate(on_bin[a:b], c_on, nb), accumulate(on_bin[a:b], c_ref, nb))
+        return (accumulate(on_bin[a:b], d, nb), accumulate(on_bin[a:b], c_on, nb),
+                accumulate(on_bin[a:b], c_ref, nb))
 
     parts = map_ranges(work, ranges, compute["workers"], compute["scheduler"], compute["progress"], "difference")
-    total = [BinSums.zeros(nb, nq) for _ in range(4)]
+    total = [BinSums.zeros(nb, nq) for _ in range(3)]
     for p in parts:
         total = [t + x for t, x in zip(total, p)]
-    dsum, dsum_a, onsum, refsum = total
+    dsum, onsum, refsum = total
     count = dsum.count
     diff = dsum.mean()
     err = bin_errors(dsum.variance(), count, k, shared)
-    n_a = dsum_a.count[:, None].astype(float)
-    n_b = (count - dsum_a.count)[:, None].astype(float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean_a = dsum_a.sum / n_a
-        mean_b = (dsum.sum - dsum_a.sum) / n_b
-        noise = (mean_a - mean_b) * np.sqrt(n_a * n_b) / (n_a + n_b)
     low = count < binning["min_shots"]
     log.info("differences in %d bins from %d pump-on shots with %d references each; median relative error %.2e",
              nb, int(count.sum()), k, float(np.nanmedian(err)) if np.isfinite(err).any() else float("nan"))
@@ -109,7 +92,5 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
         store.write_array(g, "diff", diff.astype(np.float32), ["delay", "q"], units=units)
         store.write_array(g, "diff_err", err.astype(np.float32), ["delay", "q"], units=units,
                           attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
-        store.write_array(g, "diff_noise", noise.astype(np.float32), ["delay", "q"], units=units,
-                          attrs={"meaning": "noise-only map: scaled difference of interleaved half-bins"})
         store.write_array(g, "on_mean", onsum.mean().astype(np.float32), ["delay", "q"], units=units)
         store.write_array(g, "off_mean", refsum.mean().astype(np.float32), ["delay", "q"], units=units)
