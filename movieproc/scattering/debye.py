@@ -154,11 +154,13 @@ def pair_damping(damping, pair_symbols, q):
 
 
 def _sinc32(x):
-    """sin(x)/x in float32 for float32 ``x`` >= 0 (1 at x = 0)."""
-    x = np.asarray(x, dtype=np.float32)
-    safe = np.where(x == 0, np.float32(1.0), x)
-    out = np.sin(safe) / safe
-    out[x == 0] = 1.0
+    """sin(x)/x in float32 for float32 ``x`` >= 0 (1 at x = 0).
+
+    x is raised to at least 1e-30 (a normal float32), where sin(x)/x is exactly 1.
+    """
+    y = np.maximum(np.asarray(x, dtype=np.float32), np.float32(1e-30))
+    out = np.sin(y)
+    out /= y
     return out
 
 
@@ -200,43 +202,48 @@ def debye(q, positions, elements, energy=None, anomalous=False, damping=None,
     positions, elements = _check_structure(positions, elements)
     unique, table = effective_form_factors(
         elements, q, energy=energy, anomalous=anomalous, excluded_volume=excluded_volume)
-    index = {e: k for k, e in enumerate(unique)}
-    types = np.array([index[e] for e in elements], dtype=np.int64)
+    unique, types, pairs, pair_row = _types(elements)
+    n = len(elements)
     counts = np.bincount(types, minlength=len(unique))
     s = (counts[:, None] * np.abs(table) ** 2).sum(axis=0)
-    pairs, weights = _pair_weights(table)
+    _, weights = _pair_weights(table)
     per_atom_sigma = None
     if damping is not None and not isinstance(damping, dict) and np.ndim(damping) == 2:
         per_atom_sigma = np.asarray(damping, dtype=np.float64)
-        if per_atom_sigma.shape != (len(elements),) * 2:
+        if per_atom_sigma.shape != (n, n):
             raise InputError("damping", f"array of shape {per_atom_sigma.shape}",
-                             f"shape ({len(elements)}, {len(elements)}) of sigma_ij in Å")
+                             f"shape ({n}, {n}) of sigma_ij in Å")
         factors = None
     else:
         factors = pair_damping(damping, [(unique[a], unique[b]) for a, b in pairs], q)
     q32 = q.astype(np.float32)
     q2 = q**2
-    iu, ju = np.triu_indices(len(elements), k=1)
-    rows_per_chunk = max(1, int(max_chunk) // max(1, q.size))
-    ta, tb = types[iu], types[ju]
-    for p, (a, b) in enumerate(pairs):
-        sel = np.flatnonzero(((ta == a) & (tb == b)) | ((ta == b) & (tb == a)))
-        if sel.size == 0:
-            continue
-        total = np.zeros(q.size)
-        for start in range(0, sel.size, rows_per_chunk):
-            idx = sel[start:start + rows_per_chunk]
-            i, j = iu[idx], ju[idx]
-            d = np.sqrt(((positions[i] - positions[j]) ** 2).sum(axis=1))
-            block = _sinc32(np.multiply.outer(d.astype(np.float32), q32))
-            if per_atom_sigma is not None:
-                sig = per_atom_sigma[i, j]
-                block = block * np.exp(-0.5 * np.multiply.outer(sig**2, q2)).astype(np.float32)
-            total += block.sum(axis=0, dtype=np.float64)
-        if factors is not None:
-            total = total * factors[p]
-        s += 2.0 * weights[p] * total
-    return s
+    sums = np.zeros((len(pairs), q.size))  # sum of sinc over the pairs of each element pair
+    n_pairs = n * (n - 1) // 2
+    step = max(1, int(max_chunk) // max(1, q.size))
+    for start in range(0, n_pairs, step):
+        i, j = _condensed_to_ij(np.arange(start, min(start + step, n_pairs)), n)
+        p = pair_row[types[i], types[j]]
+        order = np.argsort(p, kind="stable")
+        i, j, p = i[order], j[order], p[order]
+        d = np.sqrt(((positions[i] - positions[j]) ** 2).sum(axis=1))
+        block = _sinc32(np.multiply.outer(d.astype(np.float32), q32))
+        if per_atom_sigma is not None:
+            sig = per_atom_sigma[i, j]
+            block *= np.exp(-0.5 * np.multiply.outer(sig**2, q2)).astype(np.float32)
+        bounds = np.flatnonzero(np.r_[True, p[1:] != p[:-1], True])
+        for a, b in zip(bounds[:-1], bounds[1:]):
+            sums[p[a]] += block[a:b].sum(axis=0, dtype=np.float64)
+    if factors is not None:
+        sums *= factors
+    return s + 2.0 * (weights * sums).sum(axis=0)
+
+
+def _condensed_to_ij(k, n):
+    """Atom indices (i, j), i < j, of condensed pair indices k (row-major upper triangle)."""
+    i = (n - 2 - np.floor(np.sqrt(-8.0 * k + 4.0 * n * (n - 1) - 7) / 2.0 - 0.5)).astype(np.int64)
+    j = (k + i + 1 - n * (n - 1) // 2 + (n - i) * (n - i - 1) // 2).astype(np.int64)
+    return i, j
 
 
 # ---------------------------------------------------------------------------
