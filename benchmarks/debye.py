@@ -54,15 +54,14 @@ def main(argv=None):
     args = parser.parse_args(argv)
     rng = np.random.default_rng(0)
     n_atoms, n_frames, n_traj_atoms, repeats = (2000, 1000, 200, 7)
-    if args.quick:
-        n_atoms, n_frames, n_traj_atoms, repeats = (500, 50, 100, 3)
+    if args.quick:  # same structure sizes (the ratio depends on them), fewer frames and repeats
+        n_frames, repeats = 100, 3
     q = np.linspace(0.1, 8.0, 400)
     elements, pos = cluster(n_atoms, rng)
     r_max = D.default_r_max(pos, 0.01)
 
     # warm up: compile the kernel, load BLAS
-    hist = D.distance_histograms(pos[:50], elements[:50], r_max=r_max)
-    unique, table = D.effective_form_factors(elements, q)
+    D.distance_histograms(pos[:50], elements[:50], r_max=r_max)
     pdist(pos)
 
     hist = D.distance_histograms(pos, elements, r_max=r_max)
