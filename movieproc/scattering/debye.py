@@ -339,6 +339,12 @@ def _types(elements):
     return unique, types, pairs, pair_row
 
 
+def _used_bins(counts):
+    """Number of leading grid points up to the last non-empty one (the rest add 0)."""
+    nonzero = np.flatnonzero(counts.reshape(-1, counts.shape[-1]).any(axis=0))
+    return int(nonzero[-1]) + 1 if nonzero.size else 0
+
+
 def default_r_max(positions, dr):
     """A histogram range that holds every pair distance: the largest bounding-box
     diagonal over all frames plus two grid steps, Å. ``positions`` (..., N, 3)."""
@@ -454,7 +460,8 @@ def debye_from_histograms(q, histograms, form_factors, damping=None, sinc=None):
     factors = pair_damping(damping, histograms.pair_symbols, q)
     if factors is not None:
         weights = weights * factors
-    pair_sums = counts @ sinc  # (..., P, nq)
+    used = _used_bins(counts)
+    pair_sums = counts[..., :used] @ sinc[:used]  # (..., P, nq)
     return self_term + 2.0 * (pair_sums * weights).sum(axis=-2)
 
 

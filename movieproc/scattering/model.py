@@ -64,7 +64,9 @@ class _Prepared:
             if overflow > 0:
                 raise InputError(f"frame {first_index + k}", f"pair distances up to {overflow:.3f} Å",
                                  f"distances below r_max = {self.r_max:g} Å")
-        sums = (counts.reshape(-1, self.k_size) @ self.sinc).reshape(frames.shape[0], n_pairs, -1)
+        used = _debye._used_bins(counts)  # the bounding-box range is generous: skip empty bins
+        sums = (counts.reshape(-1, self.k_size)[:, :used] @ self.sinc[:used]).reshape(
+            frames.shape[0], n_pairs, -1)
         return self.self_term + np.einsum("fpq,pq->fq", sums, self.weights2)
 
 
