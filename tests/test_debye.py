@@ -253,3 +253,11 @@ def test_invariant_under_permutation_rotation_translation(data):
     assert np.abs(exact2 - exact).max() <= 1e-6 * scale
     # linear sharing is continuous in r, so a 1e-14 Å change moves S by ~1e-12 of S
     assert np.abs(hist2 - hist).max() <= 1e-6 * scale
+
+
+def test_single_atom_is_f_squared():
+    # closed form: one atom scatters |f|^2 (no pairs)
+    f = ff.form_factor("Ir", Q, energy=11.0, anomalous=True)
+    for s in (D.debye(Q, [[1.0, 2.0, 3.0]], ["Ir"], energy=11.0, anomalous=True),
+              D.debye_histogram(Q, [[1.0, 2.0, 3.0]], ["Ir"], energy=11.0, anomalous=True)):
+        np.testing.assert_allclose(s, np.abs(f) ** 2, rtol=1e-12)
