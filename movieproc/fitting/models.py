@@ -1,0 +1,284 @@
+"""Global models of difference maps dS(delay, q) for variable-projection fitting.
+
+A model splits into non-linear parameters theta (time zero, IRF width, lifetimes,
+oscillation period and damping) and linear amplitudes. For given theta it returns a
+:class:`LinearDesign`, the linear part of
+
+    dS(t, q) = sum_k P_k(t) B_k(q)          profiles with free q-curves B (solved per q)
+             + sum_g beta_g X_g(t, q)        global maps, one scale each (e.g. alpha)
+             + sum_j s_j(t) G_j(q)           curves scaled per delay (solvent terms)
+
+which :mod:`movieproc.fitting.varpro` solves by weighted linear least squares inside
+the non-linear fit.
+
+Models
+------
+:class:`SpeciesModel`
+    Populations of a sequential or parallel first-order scheme, convolved with the
+    Gaussian IRF, times species curves that are either free (solved from the data,
+    B = D pinv(C^T) in the weighted sense) or given (e.g. from the scattering engine,
+    S_k - S_ground) and scaled by one excitation fraction alpha; optionally a damped
+    oscillation with free curves; plus per-delay solvent coefficients.
+:class:`TrajectoryModel`
+    A simulated trajectory's difference curves dS(q, tau_f) mapped onto delay
+    through time zero and the IRF, times the excited-state survival exp(-tau/T)
+    (after the last frame the structure holds the last frame), scaled by alpha,
+    plus per-delay solvent coefficients.
+
+All times in ps; q-curves on the data's q grid (1/Å).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from movieproc.errors import ConfigError, InputError
+from movieproc.fitting import irf, kinetics
+
+__all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel"]
+
+
+@dataclass
+class LinearDesign:
+    """Linear part of a model at fixed non-linear parameters.
+
+    Attributes
+    ----------
+    profiles : ndarray, shape (n_delay, K), or None
+        Temporal profiles whose q-curves are free linear unknowns.
+    maps : ndarray, shape (n_g, n_delay, n_q), or None
+        Model maps each scaled by one global linear coefficient.
+    curves : ndarray, shape (J, n_q), or None
+        Curves scaled by a coefficient per delay (solvent terms).
+    populations : ndarray, shape (n_delay, n_species)
+        Populations to report (IRF-convolved).
+    """
+
+    profiles: np.ndarray | None
+    maps: np.ndarray | None
+    curves: np.ndarray | None
+    populations: np.ndarray
+
+
+def _solvent(solvent, solvent_names, nq):
+    if solvent is None:
+        return None, []
+    G = np.atleast_2d(np.asarray(solvent, dtype=float))
+    if G.ndim != 2 or (nq is not None and G.shape[1] != nq) or not np.all(np.isfinite(G)):
+        raise InputError("argument 'solvent'", f"shape {G.shape}", "finite solvent curves (J, n_q) on the data's q grid")
+    names = [f"solvent_{j}" for j in range(G.shape[0])] if solvent_names is None else list(solvent_names)
+    if len(names) != G.shape[0]:
+        raise InputError("argument 'solvent_names'", f"{len(names)} names", f"{G.shape[0]}")
+    return G.copy(), names
+
+
+class SpeciesModel:
+    """Kinetic species model: dS = sum_k c_k(t; theta) B_k(q) [+ oscillation] + solvent.
+
+    Parameters
+    ----------
+    n_lifetimes : int
+        Number of decay steps m (>= 1). The scheme has m + 1 species.
+    scheme : {"sequential", "parallel"}
+        ``sequential``: A1 -> A2 -> ... -> Am -> P, starting in A1.
+        ``parallel``: A1..Am decay independently into P, starting with populations
+        ``initial`` (default 1/m each).
+    curves : array_like, shape (n_used, n_q), optional
+        Given species difference curves (S_k - S_ground) for the species in
+        ``species``; the model is alpha * sum_k c_k B_k with one linear scale alpha
+        (the excitation fraction when the curves are absolute). If omitted the
+        curves are free linear unknowns solved from the data.
+    species : sequence of int, optional
+        Indices (0..m) of the species that contribute a curve; default all m + 1.
+        Leave out P when it is the recovered ground state (no solute signal).
+    solvent : array_like, shape (J, n_q), optional
+        Curves with a free coefficient per delay (dS/dT, dS/drho, dS/d ln q...).
+    solvent_names : sequence of str, optional
+    oscillation : bool
+        Add a damped oscillation exp(-x/damping) [cos, sin](2 pi x / period), IRF-
+        convolved, as two profiles with free curves (free-curve mode only);
+        parameters ``osc_period`` and ``osc_damping`` (ps).
+    initial : array_like, shape (m,), optional
+        Initial populations for the parallel scheme.
+
+    Attributes
+    ----------
+    param_names : tuple of str
+        ``t0`` (ps), ``sigma`` (ps, IRF standard deviation), ``tau_1``..``tau_m``
+        (lifetimes, ps), then ``osc_period``, ``osc_damping`` if enabled.
+    default_bounds : dict
+        name -> (lower, upper).
+    species_names : list of str
+    map_names : list of str
+        Names of the global linear coefficients (``["alpha"]`` with given curves).
+    profile_names : list of str
+        Names of the free-curve profiles.
+    solvent_names : list of str
+    """
+
+    def __init__(self, n_lifetimes, scheme="sequential", curves=None, species=None, solvent=None,
+                 solvent_names=None, oscillation=False, initial=None):
+        m = int(n_lifetimes)
+        if m < 1:
+            raise ConfigError("fit.kinetics.n_lifetimes", str(n_lifetimes), "an integer >= 1")
+        if scheme not in ("sequential", "parallel"):
+            raise ConfigError("fit.kinetics.scheme", repr(scheme), "'sequential' or 'parallel'")
+        self.n_lifetimes, self.scheme = m, scheme
+        letters = [f"A{i + 1}" for i in range(m)] + ["P"]
+        self.species_names = letters
+        self.species = list(range(m + 1)) if species is None else [int(s) for s in species]
+        if not self.species or any(s < 0 or s > m for s in self.species) or len(set(self.species)) != len(self.species):
+            raise ConfigError("fit.kinetics.species", f"{species!r}", f"distinct indices in 0..{m}")
+        self.initial = None
+        if scheme == "parallel":
+            init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
+            if init.shape != (m,) or not np.all(np.isfinite(init)):
+                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{m} finite initial populations")
+            self.initial = np.append(init, 0.0)
+        nq = None
+        if curves is not None:
+            B = np.atleast_2d(np.asarray(curves, dtype=float))
+            if B.shape[0] != len(self.species) or not np.all(np.isfinite(B)):
+                raise InputError("argument 'curves'", f"shape {B.shape}",
+                                 f"finite curves ({len(self.species)}, n_q), one per contributing species")
+            self.curves = B.copy()
+            nq = B.shape[1]
+        else:
+            self.curves = None
+        if oscillation and curves is not None:
+            raise ConfigError("fit.model.oscillation", "an oscillation with given species curves",
+                              "free species curves (no curve is known for the oscillation)")
+        self.oscillation = bool(oscillation)
+        self.solvent, self.solvent_names = _solvent(solvent, solvent_names, nq)
+        names = ["t0", "sigma"] + [f"tau_{i + 1}" for i in range(m)]
+        if self.oscillation:
+            names += ["osc_period", "osc_damping"]
+        self.param_names = tuple(names)
+        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf)}
+        for i in range(m):
+            self.default_bounds[f"tau_{i + 1}"] = (1e-6, np.inf)
+        if self.oscillation:
+            self.default_bounds["osc_period"] = (1e-6, np.inf)
+            self.default_bounds["osc_damping"] = (1e-6, np.inf)
+        self.map_names = ["alpha"] if self.curves is not None else []
+        self.profile_names = [] if self.curves is not None else [letters[s] for s in self.species]
+        if self.oscillation:
+            self.profile_names += ["osc_cos", "osc_sin"]
+
+    def rate_matrix(self, params):
+        """Rate matrix (1/ps) of the scheme for parameters ``params`` (dict)."""
+        k = np.array([1.0 / params[f"tau_{i + 1}"] for i in range(self.n_lifetimes)])
+        if self.scheme == "sequential":
+            return kinetics.sequential_rate_matrix(k)
+        return kinetics.parallel_rate_matrix(k)
+
+    def populations(self, params, delay):
+        """IRF-convolved populations (n_delay, m + 1) of all species."""
+        K = self.rate_matrix(params)
+        if self.scheme == "sequential":
+            c0 = np.zeros(K.shape[0])
+            c0[0] = 1.0
+        else:
+            c0 = self.initial
+        return kinetics.populations_irf(K, c0, delay, params["t0"], params["sigma"])
+
+    def design(self, params, delay):
+        """Linear design at non-linear parameters ``params`` for delays ``delay`` (ps).
+
+        Parameters
+        ----------
+        params : dict
+            Values for every name in ``param_names``.
+        delay : ndarray, shape (n_delay,)
+            Delays, ps.
+
+        Returns
+        -------
+        LinearDesign
+        """
+        delay = np.asarray(delay, dtype=float)
+        pop = self.populations(params, delay)
+        used = pop[:, self.species]
+        profiles, maps = None, None
+        if self.curves is not None:
+            maps = (used @ self.curves)[None]
+        else:
+            profiles = used
+        if self.oscillation:
+            per, damp = params["osc_period"], params["osc_damping"]
+            omega = 2 * np.pi / per
+            osc = [irf.damped_oscillation_gauss(delay, damp, omega, params["t0"], params["sigma"], phase=ph)
+                   for ph in (0.0, -np.pi / 2)]
+            profiles = np.column_stack([profiles] + osc)
+        return LinearDesign(profiles=profiles, maps=maps, curves=self.solvent, populations=pop)
+
+
+class TrajectoryModel:
+    """Trajectory model: alpha * [IRF o (dS_traj(tau) exp(-tau/T))](t - t0) + solvent.
+
+    The trajectory's difference curves are taken as piecewise linear between frame
+    times and constant (the last frame) after the last frame; the excited-state
+    survival exp(-tau/T) multiplies them (applied at the frames, and exactly as an
+    exponential tail after the last frame; between frames the product is
+    interpolated linearly, relative error <= (h/T)^2/8 for frame spacing h). The
+    convolution with the Gaussian IRF is in closed form
+    (:func:`movieproc.fitting.irf.convolve_tabulated`).
+
+    Parameters
+    ----------
+    frame_times : array_like, shape (F,)
+        Frame times tau_f after excitation, ps, strictly increasing, >= 0.
+    frame_curves : array_like, shape (F, n_q)
+        Difference curves S_f(q) - S_ground(q) of the frames (absolute or relative
+        units; alpha carries the scale).
+    solvent : array_like, shape (J, n_q), optional
+        Curves with a free coefficient per delay.
+    solvent_names : sequence of str, optional
+
+    Attributes
+    ----------
+    param_names : tuple
+        ``t0`` (ps), ``sigma`` (ps), ``lifetime`` (ps; ``np.inf`` allowed as a fixed
+        value for no decay).
+    default_bounds : dict
+    map_names : list
+        ``["alpha"]``.
+    species_names : list
+        ``["excited"]``: the reported population is the IRF-convolved survival.
+    """
+
+    def __init__(self, frame_times, frame_curves, solvent=None, solvent_names=None):
+        tf = np.asarray(frame_times, dtype=float)
+        Y = np.asarray(frame_curves, dtype=float)
+        if tf.ndim != 1 or tf.size < 1 or not np.all(np.isfinite(tf)) or np.any(tf < 0):
+            raise InputError("argument 'frame_times'", f"shape {tf.shape}", "finite frame times >= 0 ps")
+        if tf.size > 1 and not np.all(np.diff(tf) > 0):
+            raise InputError("argument 'frame_times'", "non-increasing times", "strictly increasing frame times (ps)")
+        if Y.ndim != 2 or Y.shape[0] != tf.size or not np.all(np.isfinite(Y)):
+            raise InputError("argument 'frame_curves'", f"shape {Y.shape}", f"finite curves ({tf.size}, n_q)")
+        self.frame_times, self.frame_curves = tf.copy(), Y.copy()
+        self.solvent, self.solvent_names = _solvent(solvent, solvent_names, Y.shape[1])
+        self.param_names = ("t0", "sigma", "lifetime")
+        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf), "lifetime": (1e-6, np.inf)}
+        self.map_names = ["alpha"]
+        self.profile_names = []
+        self.species_names = ["excited"]
+
+    def signal(self, params, delay):
+        """Model map before scaling by alpha, shape (n_delay, n_q)."""
+        T = float(params["lifetime"])
+        rate = 0.0 if np.isinf(T) else 1.0 / T
+        surv = np.exp(-rate * self.frame_times)
+        return irf.convolve_tabulated(self.frame_times, self.frame_curves * surv[:, None], delay,
+                                      params["t0"], params["sigma"], tail_rate=rate)
+
+    def design(self, params, delay):
+        """Linear design at ``params`` (dict with t0, sigma, lifetime) for ``delay`` (ps)."""
+        delay = np.asarray(delay, dtype=float)
+        T = float(params["lifetime"])
+        rate = 0.0 if np.isinf(T) else 1.0 / T
+        pop = irf.exp_gauss(delay, rate, params["t0"], params["sigma"])[:, None]
+        return LinearDesign(profiles=None, maps=self.signal(params, delay)[None], curves=self.solvent,
+                            populations=pop)

@@ -1,0 +1,208 @@
+"""Per-delay structure: which trajectory frame best explains each delay's curve.
+
+For each delay t and each frame f of a trajectory (or any set of candidate
+structures) the difference curve is fitted as
+
+    dS_t(q) ~ a_tf dS_f(q) + sum_j s_tfj G_j(q),      a_tf >= 0,
+
+by weighted linear least squares (weights 1/err^2), giving chi2_tf. The best
+frame minimizes chi2_tf. The frames with chi2_tf - chi2_min <= threshold form the
+set of acceptable structures; the range of a geometric parameter (e.g. a
+metal-metal distance, Å) over that set is its uncertainty interval.
+
+Threshold: delta chi2 = 1 is the 68 % level for one parameter of interest
+(Lampton, Margon & Bowyer, ApJ 208, 177 (1976)); it is multiplied by the reduced
+chi2 of the best frame, which widens the interval when the best frame does not
+describe the data to within the errors (and narrows it when the errors are
+overestimated). The frame index is treated as that one parameter; this is an
+approximation when frames are not ordered along one coordinate, and the
+interval is only as fine as the trajectory samples the parameter.
+
+The amplitude a >= 0 (the excited fraction times a population) is solved in
+closed form: if the unconstrained optimum is negative the constrained optimum of
+the convex quadratic is a = 0 (solvent terms only).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from movieproc.errors import InputError
+
+__all__ = ["FrameFit", "fit_frames"]
+
+
+@dataclass
+class FrameFit:
+    """Per-delay best frame and parameter intervals.
+
+    Attributes
+    ----------
+    best_frame : ndarray of int, shape (n_delay,)
+    amplitude, amplitude_err : ndarray, shape (n_delay,)
+        a >= 0 of the best frame and its standard error (scaled by
+        sqrt(max(1, red_chi2))).
+    chi2 : ndarray, shape (n_delay, F)
+        chi2 of every frame.
+    chi2_best, red_chi2_best : ndarray, shape (n_delay,)
+    dof : ndarray of int, shape (n_delay,)
+        Valid points minus (1 + J).
+    threshold : ndarray, shape (n_delay,)
+        Delta-chi2 threshold used.
+    accepted : ndarray of bool, shape (n_delay, F)
+        Frames within the threshold.
+    value, lower, upper : dict of ndarray, shape (n_delay,)
+        Per parameter: value at the best frame and the range over accepted frames.
+    solvent_coef : ndarray, shape (n_delay, J) or None
+        Solvent coefficients of the best frame.
+    at_end : ndarray of bool, shape (n_delay,)
+        Best frame is the last one (the structure may continue beyond the
+        trajectory; the interval is then one-sided).
+    at_start : ndarray of bool, shape (n_delay,)
+        Best frame is the first one.
+    significant : ndarray of bool, shape (n_delay,)
+        amplitude >= 2 amplitude_err; where False the structure is not determined.
+        Necessary, not sufficient: the best of F frames is selected, so pure noise
+        passes somewhat more often than the single-frame one-sided 2.3 % (on a
+        smooth toy trajectory of 300 frames, ~2-3 %).
+    warnings : list of str
+    """
+
+    best_frame: np.ndarray
+    amplitude: np.ndarray
+    amplitude_err: np.ndarray
+    chi2: np.ndarray
+    chi2_best: np.ndarray
+    red_chi2_best: np.ndarray
+    dof: np.ndarray
+    threshold: np.ndarray
+    accepted: np.ndarray
+    value: dict
+    lower: dict
+    upper: dict
+    solvent_coef: np.ndarray | None
+    at_end: np.ndarray
+    at_start: np.ndarray
+    significant: np.ndarray
+    warnings: list = field(default_factory=list)
+
+
+def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta_chi2=1.0, scale_threshold=True):
+    """Fit every delay's curve with every frame's curve (plus solvent terms).
+
+    Parameters
+    ----------
+    diff : array_like, shape (n_delay, n_q)
+        Difference signal (solute signal, or raw with ``solvent`` given).
+    diff_err : array_like, shape (n_delay, n_q)
+        Standard errors; non-finite or non-positive ones leave the point out.
+    frame_curves : array_like, shape (F, n_q)
+        Difference curves S_f - S_ground of the frames.
+    solvent : array_like, shape (J, n_q), optional
+        Curves with a free coefficient per delay and frame.
+    params : dict of array_like (F,), optional
+        Geometric parameters per frame (e.g. {"Pt-Pt": distances in Å}).
+    delta_chi2 : float
+        Threshold before scaling (1.0: 68 % for one parameter).
+    scale_threshold : bool
+        Multiply the threshold by the best frame's reduced chi2.
+
+    Returns
+    -------
+    FrameFit
+    """
+    d = np.asarray(diff, dtype=float)
+    e = np.asarray(diff_err, dtype=float)
+    Y = np.asarray(frame_curves, dtype=float)
+    if d.ndim != 2 or e.shape != d.shape:
+        raise InputError("arguments 'diff' / 'diff_err'", f"shapes {d.shape}, {e.shape}", "equal (n_delay, n_q)")
+    nt, nq = d.shape
+    if Y.ndim != 2 or Y.shape[1] != nq or not np.all(np.isfinite(Y)):
+        raise InputError("argument 'frame_curves'", f"shape {Y.shape}", f"finite curves (F, {nq})")
+    F = Y.shape[0]
+    G = np.zeros((0, nq)) if solvent is None else np.atleast_2d(np.asarray(solvent, dtype=float))
+    if G.shape[1] != nq or not np.all(np.isfinite(G)):
+        raise InputError("argument 'solvent'", f"shape {G.shape}", f"finite curves (J, {nq})")
+    J = G.shape[0]
+    params = {} if params is None else {k: np.asarray(v, dtype=float) for k, v in params.items()}
+    for k, v in params.items():
+        if v.shape != (F,):
+            raise InputError(f"argument 'params[{k!r}]'", f"shape {v.shape}", f"({F},), one value per frame")
+    valid = np.isfinite(d) & np.isfinite(e) & (e > 0)
+
+    chi2 = np.full((nt, F), np.nan)
+    amp = np.full((nt, F), np.nan)
+    amp_var = np.full((nt, F), np.nan)
+    dof = valid.sum(1) - (1 + J)
+    sc_best = np.full((nt, J), np.nan) if J else None
+    warnings = []
+    for t in range(nt):
+        v = valid[t]
+        if dof[t] <= 0:
+            warnings.append(f"delay index {t}: {v.sum()} valid points for {1 + J} unknowns; not fitted")
+            continue
+        w = 1.0 / e[t, v]
+        y = d[t, v] * w
+        Yw = Y[:, v] * w                       # (F, n_valid)
+        if J:
+            Gw = G[:, v] * w
+            Qg, _ = np.linalg.qr(Gw.T)          # orthonormal basis of the weighted solvent curves
+            yp = y - Qg @ (Qg.T @ y)
+            Yp = Yw - (Yw @ Qg) @ Qg.T
+        else:
+            yp, Yp = y, Yw
+        ff = np.einsum("fq,fq->f", Yp, Yp)
+        fy = Yp @ yp
+        with np.errstate(invalid="ignore", divide="ignore"):
+            a = np.where(ff > 0, fy / np.where(ff > 0, ff, 1.0), 0.0)
+        a = np.clip(a, 0.0, None)
+        # Direct sum of squares (not yy - fy^2/ff, which cancels to ~eps * yy).
+        res = yp[None, :] - a[:, None] * Yp
+        chi2[t] = np.einsum("fq,fq->f", res, res)
+        amp[t] = a
+        with np.errstate(divide="ignore"):
+            amp_var[t] = np.where(ff > 0, 1.0 / np.where(ff > 0, ff, 1.0), np.inf)
+    fitted = np.isfinite(chi2).any(axis=1)
+    best = np.zeros(nt, dtype=int)
+    best[fitted] = np.nanargmin(chi2[fitted], axis=1)
+    rows = np.arange(nt)
+    chi2_best = np.where(fitted, chi2[rows, best], np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        red = np.where(dof > 0, chi2_best / np.maximum(dof, 1), np.nan)
+    thr = delta_chi2 * (red if scale_threshold else np.ones(nt))
+    accepted = (chi2 - chi2_best[:, None]) <= thr[:, None]
+    accepted &= fitted[:, None]
+    a_best = np.where(fitted, amp[rows, best], np.nan)
+    a_err = np.sqrt(amp_var[rows, best] * np.maximum(1.0, np.nan_to_num(red, nan=1.0)))
+    significant = fitted & (a_best >= 2 * a_err)
+    value, lower, upper = {}, {}, {}
+    for k, v in params.items():
+        value[k] = np.where(fitted, v[best], np.nan)
+        masked = np.where(accepted, v[None, :], np.nan)
+        with np.errstate(all="ignore"):
+            lower[k] = np.where(fitted, np.nanmin(np.where(accepted, masked, np.inf), axis=1), np.nan)
+            upper[k] = np.where(fitted, np.nanmax(np.where(accepted, masked, -np.inf), axis=1), np.nan)
+    if J:
+        # Solvent coefficients of the best frame (unweighted basis), per delay.
+        for t in np.nonzero(fitted)[0]:
+            v = valid[t]
+            w = 1.0 / e[t, v]
+            A = np.vstack([Y[best[t]], G])[:, v].T * w[:, None]
+            coef = np.linalg.lstsq(A, d[t, v] * w, rcond=None)[0]
+            if amp[t, best[t]] == 0.0:
+                coef = np.concatenate([[0.0], np.linalg.lstsq(A[:, 1:], d[t, v] * w, rcond=None)[0]])
+            sc_best[t] = coef[1:]
+    at_end = fitted & (best == F - 1)
+    at_start = fitted & (best == 0)
+    if np.any(at_end):
+        warnings.append(f"{int(at_end.sum())} delays are best described by the last frame: the structure may "
+                        "lie beyond the trajectory; their upper/lower limits are bounded by it")
+    if np.any(fitted & ~significant):
+        warnings.append(f"{int((fitted & ~significant).sum())} delays have no significant solute amplitude "
+                        "(< 2 standard errors): their structure is not determined")
+    return FrameFit(best_frame=best, amplitude=a_best, amplitude_err=a_err, chi2=chi2, chi2_best=chi2_best,
+                    red_chi2_best=red, dof=dof, threshold=thr, accepted=accepted, value=value, lower=lower,
+                    upper=upper, solvent_coef=sc_best, at_end=at_end, at_start=at_start,
+                    significant=significant, warnings=warnings)
