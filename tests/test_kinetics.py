@@ -178,8 +178,8 @@ def test_convolve_tabulated_tail_rate_and_zero_tail():
 # ---------------------------------------------------------------- kinetics
 
 def test_sequential_matches_textbook():
-    # Textbook closed form for A -> B -> C (e.g. Atkins' Physical Chemistry, consecutive
-    # first-order reactions; also METHODS.md section 6):
+    # Textbook closed form for consecutive first-order reactions A -> B -> C (e.g. Atkins'
+    # Physical Chemistry; citation from memory, the formula is re-derivable in two lines):
     # A = exp(-k1 t), B = k1/(k2 - k1) (exp(-k1 t) - exp(-k2 t)), C = 1 - A - B.
     k1, k2 = 0.8, 0.15
     t = np.linspace(0, 40, 81)

@@ -18,7 +18,8 @@ ERR = 0.01 * (1 + Q)  # standard errors, varying with q
 
 def test_single_term_closed_form():
     # Weighted least squares with one basis curve (Bevington & Robinson, Data Reduction and
-    # Error Analysis, ch. 6-7): c = sum(w b d) / sum(w b^2), sigma_c = 1 / sqrt(sum(w b^2)).
+    # Error Analysis for the Physical Sciences; chapter numbers from memory, ch. 6-7):
+    # c = sum(w b d) / sum(w b^2), sigma_c = 1 / sqrt(sum(w b^2)).
     rng = np.random.default_rng(0)
     d = 0.4 * DSDT + rng.normal(0, ERR)
     w = 1 / ERR**2

@@ -36,6 +36,7 @@ __all__ = [
     "step_gauss",
     "exp_gauss",
     "damped_oscillation_gauss",
+    "tabulated_weights",
     "convolve_tabulated",
 ]
 

@@ -103,6 +103,13 @@ class SpeciesModel:
     initial : array_like, shape (m,), optional
         Initial populations for the parallel scheme.
 
+    Notes
+    -----
+    With free curves for all of A1..Am the span of the sequential populations is
+    that of the m exponentials, so the model is unchanged when lifetimes are
+    exchanged: the data then give the set of lifetimes, and which species owns which
+    needs given curves or a constraint (e.g. bounds that keep tau_1 < tau_2).
+
     Attributes
     ----------
     param_names : tuple of str

@@ -10,8 +10,8 @@ frame minimizes chi2_tf. The frames with chi2_tf - chi2_min <= threshold form th
 set of acceptable structures; the range of a geometric parameter (e.g. a
 metal-metal distance, Å) over that set is its uncertainty interval.
 
-Threshold: delta chi2 = 1 is the 68 % level for one parameter of interest
-(Lampton, Margon & Bowyer, ApJ 208, 177 (1976)); it is multiplied by the reduced
+Threshold: delta chi2 = 1 is the 68.3 % level for one parameter of interest
+(Press et al., Numerical Recipes, section 15.6); it is multiplied by the reduced
 chi2 of the best frame, which widens the interval when the best frame does not
 describe the data to within the errors (and narrows it when the errors are
 overestimated). The frame index is treated as that one parameter; this is an
