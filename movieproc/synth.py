@@ -100,33 +100,6 @@ def trajectory(mol: dict):
 
 # ----------------------------------------------------------------------------- solvent
 
-def parse_formula(formula: str) -> dict:
-    """Element counts of a simple chemical formula such as ``C2H4O``."""
-    import re
-
-    counts: dict = {}
-    for sym, num in re.findall(r"([A-Z][a-z]?)(\d*)", formula):
-        counts[sym] = counts.get(sym, 0) + (int(num) if num else 1)
-    return counts
-
-
-def independent_atom_scattering(formula: str, q):
-    """Coherent sum of f0^2 and incoherent scattering of one molecule's free atoms.
-
-    Returns
-    -------
-    coherent, incoherent : ndarray (nq,), e.u.
-    """
-    from .scattering.formfactors import form_factor, incoherent
-
-    coh = np.zeros(np.shape(q))
-    inc = np.zeros(np.shape(q))
-    for sym, n in parse_formula(formula).items():
-        coh += n * form_factor(sym, q) ** 2
-        inc += n * incoherent(sym, q)
-    return coh, inc
-
-
 def solvent_curves(q, solv: dict):
     """Scattering of the invented solvent per solvent molecule, and its heating differentials.
 
@@ -141,6 +114,8 @@ def solvent_curves(q, solv: dict):
     dS_dT : ndarray (nq,), e.u. per molecule per K at constant density
     dS_drho : ndarray (nq,), e.u. per molecule per (g/cm^3) at constant temperature
     """
+    from .signals.scaling import independent_atom_scattering
+
     q = np.asarray(q, float)
     coh, inc = independent_atom_scattering(solv["formula"], q)
 
@@ -187,6 +162,7 @@ def true_signal(scenario: dict, q, t):
     share, ``dS_dT`` (nq,) and ``dS_drho`` (nq,) per solute share of solvent.
     """
     from .scattering.debye import debye
+    from .scattering.formfactors import incoherent
 
     mol, kin, solv = scenario["molecule"], scenario["kinetics"], scenario["solvent"]
     q = np.asarray(q, float)
@@ -232,7 +208,7 @@ def true_signal(scenario: dict, q, t):
     dS = solute + heat[:, None] * n_solv * dsdT[None, :]
     return {
         "dS": dS, "solute": solute, "heat": heat, "excited": alpha * excited, "distance": distance,
-        "S_total": s_ground + n_solv * s_solv, "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
+        "S_total": s_ground + sum(incoherent(e, q) for e in els) + n_solv * s_solv, "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
     }
 
 

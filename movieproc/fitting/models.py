@@ -74,6 +74,45 @@ def _solvent(solvent, solvent_names, nq):
     return G.copy(), names
 
 
+class _BinWidth:
+    """Per-bin delay spread added in quadrature to the IRF width.
+
+    A bin averages shots whose delays spread around its mean delay; to second
+    order that is one more Gaussian convolution, of the bin's delay standard
+    deviation. Spreads are looked up by delay value (so resampled delays keep
+    theirs).
+    """
+
+    def __init__(self, delay=None, spread=None):
+        if spread is None:
+            self.delay = self.spread = None
+            return
+        d = np.asarray(delay, dtype=float)
+        sp = np.asarray(spread, dtype=float)
+        if d.shape != sp.shape or d.ndim != 1 or not np.all(np.isfinite(d)):
+            raise InputError("argument 'delay_spread'", f"shapes {d.shape}, {sp.shape}", "(n_delay,) delays and spreads (ps)")
+        order = np.argsort(d)
+        self.delay, self.spread = d[order], np.nan_to_num(sp[order], nan=0.0)
+
+    def evaluate(self, fn, delay, sigma):
+        """``fn(delay_subset, width)`` evaluated with each delay's effective width; rows stacked."""
+        delay = np.asarray(delay, dtype=float)
+        if self.spread is None:
+            return fn(delay, sigma)
+        idx = np.clip(np.searchsorted(self.delay, delay), 0, self.delay.size - 1)
+        prev = np.clip(idx - 1, 0, self.delay.size - 1)
+        near = np.where(np.abs(self.delay[prev] - delay) < np.abs(self.delay[idx] - delay), prev, idx)
+        width = np.sqrt(float(sigma) ** 2 + self.spread[near] ** 2)
+        out = None
+        for w in np.unique(width):
+            rows = np.flatnonzero(width == w)
+            part = fn(delay[rows], w)
+            if out is None:
+                out = np.empty((delay.size,) + part.shape[1:], dtype=part.dtype)
+            out[rows] = part
+        return out
+
+
 class SpeciesModel:
     """Kinetic species model: dS = sum_k c_k(t; theta) B_k(q) [+ oscillation] + solvent.
 
@@ -102,6 +141,10 @@ class SpeciesModel:
         parameters ``osc_period`` and ``osc_damping`` (ps).
     initial : array_like, shape (m,), optional
         Initial populations for the parallel scheme.
+    delay_spread : (array_like, array_like), optional
+        Bin delays and the standard deviation of the shots' delays in each bin
+        (ps); added in quadrature to ``sigma`` per bin, so ``sigma`` is the
+        instrument response itself rather than the response widened by binning.
 
     Notes
     -----
@@ -126,7 +169,8 @@ class SpeciesModel:
     """
 
     def __init__(self, n_lifetimes, scheme="sequential", curves=None, species=None, solvent=None,
-                 solvent_names=None, oscillation=False, initial=None):
+                 solvent_names=None, oscillation=False, initial=None, delay_spread=None):
+        self.width = _BinWidth(*(delay_spread or (None, None)))
         m = int(n_lifetimes)
         if m < 1:
             raise ConfigError("fit.kinetics.n_lifetimes", str(n_lifetimes), "an integer >= 1")
@@ -189,7 +233,8 @@ class SpeciesModel:
             c0[0] = 1.0
         else:
             c0 = self.initial
-        return kinetics.populations_irf(K, c0, delay, params["t0"], params["sigma"])
+        return self.width.evaluate(lambda t, w: kinetics.populations_irf(K, c0, t, params["t0"], w),
+                                   delay, params["sigma"])
 
     def design(self, params, delay):
         """Linear design at non-linear parameters ``params`` for delays ``delay`` (ps).
@@ -243,6 +288,9 @@ class TrajectoryModel:
     solvent : array_like, shape (J, n_q), optional
         Curves with a free coefficient per delay.
     solvent_names : sequence of str, optional
+    delay_spread : (array_like, array_like), optional
+        Bin delays and per-bin delay standard deviations (ps), added in
+        quadrature to ``sigma`` (see :class:`SpeciesModel`).
 
     Attributes
     ----------
@@ -256,7 +304,8 @@ class TrajectoryModel:
         ``["excited"]``: the reported population is the IRF-convolved survival.
     """
 
-    def __init__(self, frame_times, frame_curves, solvent=None, solvent_names=None):
+    def __init__(self, frame_times, frame_curves, solvent=None, solvent_names=None, delay_spread=None):
+        self.width = _BinWidth(*(delay_spread or (None, None)))
         tf = np.asarray(frame_times, dtype=float)
         Y = np.asarray(frame_curves, dtype=float)
         if tf.ndim != 1 or tf.size < 1 or not np.all(np.isfinite(tf)) or np.any(tf < 0):
@@ -278,14 +327,17 @@ class TrajectoryModel:
         T = float(params["lifetime"])
         rate = 0.0 if np.isinf(T) else 1.0 / T
         surv = np.exp(-rate * self.frame_times)
-        return irf.convolve_tabulated(self.frame_times, self.frame_curves * surv[:, None], delay,
-                                      params["t0"], params["sigma"], tail_rate=rate)
+        Y = self.frame_curves * surv[:, None]
+        return self.width.evaluate(
+            lambda t, w: irf.convolve_tabulated(self.frame_times, Y, t, params["t0"], w, tail_rate=rate),
+            delay, params["sigma"])
 
     def design(self, params, delay):
         """Linear design at ``params`` (dict with t0, sigma, lifetime) for ``delay`` (ps)."""
         delay = np.asarray(delay, dtype=float)
         T = float(params["lifetime"])
         rate = 0.0 if np.isinf(T) else 1.0 / T
-        pop = irf.exp_gauss(delay, rate, params["t0"], params["sigma"])[:, None]
+        pop = self.width.evaluate(lambda t, w: irf.exp_gauss(t, rate, params["t0"], w), delay,
+                                  params["sigma"])[:, None]
         return LinearDesign(profiles=None, maps=self.signal(params, delay)[None], curves=self.solvent,
                             populations=pop)

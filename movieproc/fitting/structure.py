@@ -54,7 +54,8 @@ class FrameFit:
     accepted : ndarray of bool, shape (n_delay, F)
         Frames within the threshold.
     value, lower, upper : dict of ndarray, shape (n_delay,)
-        Per parameter: value at the best frame and the range over accepted frames.
+        Per parameter: value at the best frame and the range over accepted frames,
+        each frame covering the values half-way to its neighbours.
     solvent_coef : ndarray, shape (n_delay, J) or None
         Solvent coefficients of the best frame.
     at_end : ndarray of bool, shape (n_delay,)
@@ -89,7 +90,8 @@ class FrameFit:
     warnings: list = field(default_factory=list)
 
 
-def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta_chi2=1.0, scale_threshold=True):
+def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta_chi2=1.0, scale_threshold=True,
+               amplitude=None, min_sigma=2.0):
     """Fit every delay's curve with every frame's curve (plus solvent terms).
 
     Parameters
@@ -108,6 +110,16 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
         Threshold before scaling (1.0: 68 % for one parameter).
     scale_threshold : bool
         Multiply the threshold by the best frame's reduced chi2.
+    amplitude : array_like, shape (n_delay,), optional
+        Fixed amplitude per delay (e.g. excitation fraction times the excited
+        population from a global kinetic fit) instead of a free a >= 0. With a
+        free amplitude, frames whose curves differ mainly in size (small
+        displacements) are nearly interchangeable; fixing it removes that
+        freedom, so the structure is set by the curve's size as well as its shape.
+    min_sigma : float
+        A delay's structure counts as determined ("significant") when the best
+        frame lowers chi2 below that of no solute signal by at least
+        ``min_sigma**2`` (scaled like the threshold).
 
     Returns
     -------
@@ -135,7 +147,10 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
     chi2 = np.full((nt, F), np.nan)
     amp = np.full((nt, F), np.nan)
     amp_var = np.full((nt, F), np.nan)
-    dof = valid.sum(1) - (1 + J)
+    fixed = None if amplitude is None else np.asarray(amplitude, dtype=float)
+    if fixed is not None and fixed.shape != (nt,):
+        raise InputError("argument 'amplitude'", f"shape {fixed.shape}", f"({nt},), one amplitude per delay")
+    dof = valid.sum(1) - ((0 if fixed is not None else 1) + J)
     sc_best = np.full((nt, J), np.nan) if J else None
     warnings = []
     for t in range(nt):
@@ -155,9 +170,12 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
             yp, Yp = y, Yw
         ff = np.einsum("fq,fq->f", Yp, Yp)
         fy = Yp @ yp
-        with np.errstate(invalid="ignore", divide="ignore"):
-            a = np.where(ff > 0, fy / np.where(ff > 0, ff, 1.0), 0.0)
-        a = np.clip(a, 0.0, None)
+        if fixed is not None:
+            a = np.full(F, max(float(fixed[t]), 0.0) if np.isfinite(fixed[t]) else 0.0)
+        else:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                a = np.where(ff > 0, fy / np.where(ff > 0, ff, 1.0), 0.0)
+            a = np.clip(a, 0.0, None)
         # Direct sum of squares (not yy - fy^2/ff, which cancels to ~eps * yy).
         res = yp[None, :] - a[:, None] * Yp
         chi2[t] = np.einsum("fq,fq->f", res, res)
@@ -176,14 +194,31 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
     accepted &= fitted[:, None]
     a_best = np.where(fitted, amp[rows, best], np.nan)
     a_err = np.sqrt(amp_var[rows, best] * np.maximum(1.0, np.nan_to_num(red, nan=1.0)))
-    significant = fitted & (a_best >= 2 * a_err)
+    # Significant: the best frame lowers chi2 below that of no solute signal by at least
+    # min_sigma^2 (e.g. 4: 2 sigma for one amplitude), scaled like the threshold. For a
+    # free amplitude this is a >= min_sigma * sigma_a.
+    chi2_zero = np.full(nt, np.nan)
+    for t in np.nonzero(fitted)[0]:
+        v = valid[t]
+        w = 1.0 / e[t, v]
+        y = d[t, v] * w
+        if J:
+            Qg, _ = np.linalg.qr((G[:, v] * w).T)
+            y = y - Qg @ (Qg.T @ y)
+        chi2_zero[t] = y @ y
+    with np.errstate(invalid="ignore"):
+        significant = fitted & ((chi2_zero - chi2_best) >= min_sigma**2 * np.maximum(1.0, np.nan_to_num(red, nan=1.0)))
     value, lower, upper = {}, {}, {}
     for k, v in params.items():
         value[k] = np.where(fitted, v[best], np.nan)
-        masked = np.where(accepted, v[None, :], np.nan)
+        # Each frame stands for the parameter values half-way to its neighbouring
+        # frames: the interval cannot be finer than the trajectory samples it.
+        mid = np.concatenate([[v[0]], (v[1:] + v[:-1]) / 2, [v[-1]]])
+        v_lo = np.minimum(v, np.minimum(mid[:-1], mid[1:]))
+        v_hi = np.maximum(v, np.maximum(mid[:-1], mid[1:]))
         with np.errstate(all="ignore"):
-            lower[k] = np.where(fitted, np.nanmin(np.where(accepted, masked, np.inf), axis=1), np.nan)
-            upper[k] = np.where(fitted, np.nanmax(np.where(accepted, masked, -np.inf), axis=1), np.nan)
+            lower[k] = np.where(fitted, np.min(np.where(accepted, v_lo[None, :], np.inf), axis=1), np.nan)
+            upper[k] = np.where(fitted, np.max(np.where(accepted, v_hi[None, :], -np.inf), axis=1), np.nan)
     if J:
         # Solvent coefficients of the best frame (unweighted basis), per delay.
         for t in np.nonzero(fitted)[0]:
@@ -191,7 +226,10 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
             w = 1.0 / e[t, v]
             A = np.vstack([Y[best[t]], G])[:, v].T * w[:, None]
             coef = np.linalg.lstsq(A, d[t, v] * w, rcond=None)[0]
-            if amp[t, best[t]] == 0.0:
+            if fixed is not None:
+                coef = np.concatenate([[amp[t, best[t]]], np.linalg.lstsq(
+                    A[:, 1:], (d[t, v] - amp[t, best[t]] * Y[best[t], v]) * w, rcond=None)[0]]) if J else coef
+            elif amp[t, best[t]] == 0.0:
                 coef = np.concatenate([[0.0], np.linalg.lstsq(A[:, 1:], d[t, v] * w, rcond=None)[0]])
             sc_best[t] = coef[1:]
     at_end = fitted & (best == F - 1)
@@ -201,7 +239,7 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
                         "lie beyond the trajectory; their upper/lower limits are bounded by it")
     if np.any(fitted & ~significant):
         warnings.append(f"{int((fitted & ~significant).sum())} delays have no significant solute amplitude "
-                        "(< 2 standard errors): their structure is not determined")
+                        f"(< {min_sigma:g} standard errors): their structure is not determined")
     return FrameFit(best_frame=best, amplitude=a_best, amplitude_err=a_err, chi2=chi2, chi2_best=chi2_best,
                     red_chi2_best=red, dof=dof, threshold=thr, accepted=accepted, value=value, lower=lower,
                     upper=upper, solvent_coef=sc_best, at_end=at_end, at_start=at_start,

@@ -7,25 +7,25 @@ if config["run"].get("generate"):
             scenario=config["run"]["generate"]["scenario"],
         output:
             files=config["run"]["files"],
-            truth=directory(config["run"]["generate"]["truth"]),
+            truth=config["run"]["generate"]["truth"] + "/zarr.json",
         params:
             generate=config["run"]["generate"],
         run:
             from movieproc import synth
 
             g = params.generate
-            synth.synthesize_run(input.scenario, g["shots"], g["seed"], output.files, output.truth, g["mode"])
+            synth.synthesize_run(input.scenario, g["shots"], g["seed"], output.files, folder(output.truth), g["mode"])
 
 
 rule ingest:
     input:
         config["run"]["files"],
     output:
-        directory(f"{OUT}/shots.zarr"),
+        zstore("shots"),
     params:
         section("detector"),
     threads: workflow.cores
     run:
         from movieproc.stages import ingest
 
-        ingest.run(list(input), output[0], config)
+        ingest.run(list(input), folder(output[0]), config)

@@ -3,57 +3,57 @@
 
 rule select:
     input:
-        shots=f"{OUT}/shots.zarr",
+        shots=zstore("shots"),
     output:
-        directory(f"{OUT}/selection.zarr"),
+        zstore("selection"),
     params:
         section("selection", "differences"),
     threads: workflow.cores
     run:
         from movieproc.stages import select
 
-        select.run(input.shots, output[0], config)
+        select.run(folder(input.shots), folder(output[0]), config)
 
 
 rule time:
     input:
-        shots=f"{OUT}/shots.zarr",
+        shots=zstore("shots"),
     output:
-        directory(f"{OUT}/delays.zarr"),
+        zstore("delays"),
     params:
         section("timing"),
     run:
         from movieproc.stages import delays
 
-        delays.run(input.shots, output[0], config)
+        delays.run(folder(input.shots), folder(output[0]), config)
 
 
 rule bin:
     input:
-        shots=f"{OUT}/shots.zarr",
-        selection=f"{OUT}/selection.zarr",
-        delays=f"{OUT}/delays.zarr",
+        shots=zstore("shots"),
+        selection=zstore("selection"),
+        delays=zstore("delays"),
     output:
-        directory(f"{OUT}/bins.zarr"),
+        zstore("bins"),
     params:
         section("binning"),
     run:
         from movieproc.stages import bins
 
-        bins.run(input.shots, input.selection, input.delays, output[0], config)
+        bins.run(folder(input.shots), folder(input.selection), folder(input.delays), folder(output[0]), config)
 
 
 rule difference:
     input:
-        shots=f"{OUT}/shots.zarr",
-        selection=f"{OUT}/selection.zarr",
-        bins=f"{OUT}/bins.zarr",
+        shots=zstore("shots"),
+        selection=zstore("selection"),
+        bins=zstore("bins"),
     output:
-        directory(f"{OUT}/binned.zarr"),
+        zstore("binned"),
     params:
         section("differences", "binning"),
     threads: workflow.cores
     run:
         from movieproc.stages import difference
 
-        difference.run(input.shots, input.selection, input.bins, output[0], config)
+        difference.run(folder(input.shots), folder(input.selection), folder(input.bins), folder(output[0]), config)

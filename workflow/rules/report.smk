@@ -3,22 +3,23 @@
 
 rule assemble:
     input:
-        binned=f"{OUT}/binned.zarr",
-        selection=f"{OUT}/selection.zarr",
-        shots=f"{OUT}/shots.zarr",
+        binned=zstore("binned"),
+        selection=zstore("selection"),
+        shots=zstore("shots"),
+        analysis=zstore("analysis"),
     output:
-        directory(f"{OUT}/movie.zarr"),
+        zstore("movie"),
     params:
         {k: v for k, v in config.items() if k != "compute"},
     run:
         from movieproc.stages import assemble
 
-        assemble.run(input.binned, input.selection, input.shots, output[0], config)
+        assemble.run(folder(input.binned), folder(input.selection), folder(input.shots), folder(output[0]), config, extra=[folder(input.analysis)])
 
 
 rule render:
     input:
-        f"{OUT}/movie.zarr",
+        zstore("movie"),
     output:
         f"{OUT}/figures/difference_map.png",
         f"{OUT}/figures/difference_curves.png",
@@ -27,4 +28,4 @@ rule render:
     run:
         from movieproc.stages import render
 
-        render.run(input[0], f"{OUT}/figures", config)
+        render.run(folder(input[0]), f"{OUT}/figures", config)

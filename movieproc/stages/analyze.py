@@ -1,0 +1,332 @@
+"""Stage ``analyze``: absolute scale, solvent terms, SVD, kinetic/trajectory fit, structure per delay.
+
+Reads the binned differences (and the model curves of the ``scatter`` stage
+when structures are configured) and writes ``analysis.zarr``, whose arrays the
+``assemble`` stage adds to the movie:
+
+- ``solute`` (delay, q): the difference minus the fitted solvent and
+  normalization terms;
+- ``solvent_coef``, ``solvent_coef_err`` (delay, term): per-delay coefficients
+  (for ``dT`` in K when the data are on the absolute scale);
+- ``svd_values`` (component), ``svd_u`` (delay, component), ``svd_v``
+  (component, q), ``svd_noise`` (component) and the component count;
+- with a fit: ``model``, ``residual`` (delay, q), ``chi2`` (delay, reduced),
+  ``population`` (delay, species), ``correlation`` (param, param_b), fitted
+  parameters with errors in the attrs;
+- with a trajectory: the best-fitting frame per delay, ``positions`` (delay,
+  atom, xyz), ``element`` (atom), and each configured geometric parameter with
+  its lower and upper bound per delay.
+
+Bins under ``binning.min_shots`` are left out of the fits (their rows are NaN).
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import ConfigError, DataError, InputError
+from ..fitting import structure, varpro
+from ..fitting.models import SpeciesModel, TrajectoryModel
+from ..io import store
+from ..scattering import geometry
+from ..signals import scaling, svd
+from ..signals.solvent import estimate_heating_curve, fit_solvent
+from .common import Warnings, now
+
+log = logging.getLogger("movieproc.analyze")
+
+SCALE_UNITS = "e.u. per solute molecule"
+
+
+def read_differentials(path, q):
+    """Solvent differentials from a CSV (q, dS/dT, dS/drho), interpolated on ``q``.
+
+    Returns a dict ``{"dT": (nq,), "drho": (nq,)}`` (``drho`` only if the file has a third column).
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(path, "no such file", "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
+    try:
+        table = np.loadtxt(path, delimiter=",", comments="#", ndmin=2)
+    except ValueError as exc:
+        raise InputError(path, f"unreadable numbers ({exc})", "comma-separated columns q, dS/dT[, dS/drho]") from None
+    if table.shape[1] < 2 or not np.all(np.isfinite(table)) or np.any(np.diff(table[:, 0]) <= 0):
+        raise InputError(path, f"a table of shape {table.shape}", "finite columns q (increasing), dS/dT[, dS/drho]")
+    if q[0] < table[0, 0] - 1e-9 or q[-1] > table[-1, 0] + 1e-9:
+        raise InputError(path, f"q from {table[0, 0]:.3g} to {table[-1, 0]:.3g} 1/Å",
+                         f"a q range covering the data's {q[0]:.3g}-{q[-1]:.3g} 1/Å")
+    out = {"dT": np.interp(q, table[:, 0], table[:, 1])}
+    if table.shape[1] > 2:
+        out["drho"] = np.interp(q, table[:, 0], table[:, 2])
+    return out
+
+
+def _absolute_scale(config, q, models, warnings):
+    sc = config["scaling"]
+    if sc["mode"] != "solute":
+        return 1.0
+    if models is None:
+        raise ConfigError("scaling.mode", "'solute' without model.ground",
+                          "a ground-state structure (model.ground) for the solute's scattering")
+    for key in ("solvent_formula", "solvent_per_solute"):
+        if sc[key] is None:
+            raise ConfigError(f"scaling.{key}", "null", "a value, needed for scaling.mode 'solute'")
+    els = [str(e) for e in models["element"][...]]
+    unit = scaling.unit_cell_scattering(q, models["ground_S"][...], els, sc["solvent_formula"], sc["solvent_per_solute"])
+    factor = scaling.absolute_scale(q, unit, config["differences"]["norm_q_range"])
+    log.info("absolute scale: 1 normalized unit = %.6g e.u. per solute molecule", factor)
+    return factor
+
+
+def run(binned_path, models_path, out, config: dict):
+    """Analyze the binned differences; see the module docstring for what is written."""
+    warnings = Warnings("analyze", log)
+    b = store.open_group(binned_path, "binned store")
+    q, delay = store.read(b, "q"), store.read(b, "delay")
+    diff = store.read(b, "diff").astype(float)
+    err = store.read(b, "diff_err").astype(float)
+    low = store.read(b, "low_count")
+    off_mean = store.read(b, "off_mean").astype(float)
+    models = store.open_group(models_path, "model store") if models_path else None
+    if models is not None and not np.allclose(store.read(models, "q"), q, rtol=1e-9, atol=1e-12):
+        raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {binned_path}")
+
+    factor = _absolute_scale(config, q, models, warnings)
+    units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else b["diff"].attrs.get("units", "")
+    diff, err = diff * factor, err * factor
+    use = ~low & np.all(np.isfinite(diff), axis=1) & np.all(np.isfinite(err) & (err > 0), axis=1)
+    if use.sum() == 0:
+        raise DataError(f"no delay bin of {binned_path} has enough shots (binning.min_shots) for the analysis")
+
+    # --- solvent and nuisance terms (curves with a free coefficient per delay)
+    scfg = config["solvent"]
+    names, curves = [], []
+    if scfg["enabled"]:
+        if scfg["differentials"]:
+            diffs = read_differentials(scfg["differentials"], q)
+            for term in scfg["terms"]:
+                if term not in diffs:
+                    raise ConfigError("solvent.terms", f"'{term}'", f"a term present in {scfg['differentials']}")
+                names.append(term)
+                curves.append(diffs[term])
+        elif scfg["estimate_window_ps"]:
+            heat = estimate_heating_curve(diff[use], err[use], delay[use], scfg["estimate_window_ps"])
+            for w in heat.warnings:
+                warnings.add(w)
+            names.append("dT")
+            curves.append(heat.curve)
+            warnings.add("the heating curve was estimated from late delays (solvent.estimate_window_ps); "
+                         "its coefficient is in arbitrary units, not K")
+        else:
+            warnings.add("no solvent differentials (solvent.differentials) nor estimate window: no heating term fitted")
+    if config["differences"]["normalization"] != "none":
+        names.append("normalization")
+        curves.append(np.nanmean(off_mean[use], axis=0) * factor)
+    basis = np.array(curves) if curves else None
+
+    result = {"names": names, "units": units, "factor": factor, "use": use}
+    arrays = {}
+
+    # --- fits
+    fcfg = config["fit"]
+    fit_res = None
+    if fcfg["mode"] != "none":
+        spread = (delay[use], store.read(b, "delay_spread")[use])
+        fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread)
+    if fit_res is not None:
+        arrays["model"] = _rows(fit_res.model, use)
+        arrays["residual"] = _rows(fit_res.residual, use)
+        nvalid = np.maximum(np.isfinite(fit_res.residual).sum(axis=1) - (len(names) if names else 0), 1)
+        arrays["chi2"] = _rows(fit_res.chi2_delay / nvalid, use)
+        arrays["population"] = _rows(fit_res.populations, use)
+        coef, coef_err = fit_res.solvent_coef, fit_res.solvent_coef_err
+        removed = coef @ basis if basis is not None else 0.0
+        solute = diff[use] - removed
+        result["fit"] = fit_res
+    else:
+        if basis is not None:
+            sf = fit_solvent(diff[use], err[use], basis, names=names)
+            coef, coef_err, solute = sf.coef, sf.coef_err, sf.solute
+            for w in sf.warnings:
+                warnings.add(w)
+            if fcfg["mode"] == "none" and scfg["enabled"]:
+                warnings.add("no solute model in the fit (fit.mode none): solvent coefficients absorb any solute "
+                             "signal that resembles the solvent curves")
+        else:
+            coef = coef_err = None
+            solute = diff[use]
+    arrays["solute"] = _rows(solute, use)
+    if coef is not None:
+        arrays["solvent_coef"] = _rows(coef, use)
+        arrays["solvent_coef_err"] = _rows(coef_err, use)
+
+    # --- SVD of the solute difference
+    ncfg = config["svd"]
+    noise = None
+    if ncfg["noise_delays_ps"]:
+        lo, hi = ncfg["noise_delays_ps"]
+        rows = use & (delay >= lo) & (delay <= hi)
+        if rows.sum() >= 2:
+            noise = diff[rows]
+        else:
+            warnings.add(f"svd.noise_delays_ps [{lo}, {hi}] holds {rows.sum()} usable bins; noise drawn from the errors")
+    count = svd.count_components(solute, noise, err=err[use], rng=np.random.default_rng(ncfg["seed"]))
+    for w in count.warnings:
+        warnings.add(w)
+    u, s, vt = svd.svd(solute, weights=1.0 / err[use])
+    k = min(ncfg["max_components"], s.size)
+    arrays["svd_values"] = s[:k]
+    arrays["svd_noise"] = count.s_noise[:k]
+    arrays["svd_u"] = _rows(u[:, :k], use)
+    arrays["svd_v"] = vt[:k]
+    result["svd_count"] = int(count.n)
+    log.info("SVD: %d significant component(s) (values %s; noise %s)", count.n,
+             np.array2string(s[:k], precision=3), np.array2string(count.s_noise[:k], precision=3))
+
+    # --- structure per delay
+    if models is not None and "traj_dS" in models and fcfg["mode"] != "none":
+        amplitude = None
+        if fit_res is not None and fcfg["mode"] == "trajectory":
+            # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
+            amplitude = fit_res.amplitudes["alpha"] * fit_res.populations[:, 0]
+        arrays.update(_structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude))
+
+    _write(out, q, delay, arrays, result, config, warnings)
+
+
+def _rows(values, use):
+    """Expand rows of the used delays to all delays (NaN elsewhere)."""
+    values = np.asarray(values, float)
+    full = np.full((use.size,) + values.shape[1:], np.nan)
+    full[use] = values
+    return full
+
+
+def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None):
+    if fcfg["mode"] == "trajectory":
+        if models is None or "traj_dS" not in models:
+            raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")
+        times = store.read(models, "frame_time")
+        if not np.all(np.isfinite(times)):
+            raise InputError("model.trajectory", "frames without times", "time_ps= (or time_fs=) on every frame")
+        model = TrajectoryModel(times, store.read(models, "traj_dS"), solvent=basis, solvent_names=names,
+                                delay_spread=spread)
+        p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"], "lifetime": fcfg["lifetimes_ps"][0]}
+    else:
+        given = None
+        if fcfg["species_curves"] == "model":
+            if models is None or "species_dS" not in models or models["species_dS"].shape[0] == 0:
+                raise ConfigError("fit.species_curves", "'model' without model.species",
+                                  "species structures in model.species, or fit.species_curves: free")
+            given = store.read(models, "species_dS")
+        n = len(fcfg["lifetimes_ps"])
+        model = SpeciesModel(n, fcfg["kinetics"], curves=given, solvent=basis, solvent_names=names,
+                                delay_spread=spread)
+        p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"]}
+        p0.update({name: v for name, v in zip(model.param_names[2:], fcfg["lifetimes_ps"])})
+    res = varpro.fit(model, diff, err, delay, p0)
+    for w in res.warnings:
+        warnings.add(f"fit: {w}")
+    if not res.converged:
+        warnings.add(f"fit did NOT converge ({res.message}); parameters are not reliable")
+    if res.at_bound:
+        warnings.add(f"fit parameters at a bound: {', '.join(res.at_bound)}")
+    text = ", ".join(f"{k} = {v:.4g} ± {res.stderr.get(k, np.nan):.2g}" for k, v in res.params.items())
+    text += "".join(f", {k} = {v:.4g} ± {res.amplitudes_err.get(k, np.nan):.2g}" for k, v in res.amplitudes.items())
+    log.info("%s fit: %s; reduced chi2 %.3f", fcfg["mode"], text, res.red_chi2)
+    if fcfg["bootstrap"]:
+        def refit(d, e, t):
+            order = np.argsort(t, kind="stable")
+            r = varpro.fit(model, d[order], e[order], t[order], res.params, linear_errors=False)
+            return [r.params[k] for k in model.param_names] + list(r.amplitudes.values())
+
+        bs = varpro.bootstrap(refit, (diff, err, delay), fcfg["bootstrap"], np.random.default_rng(fcfg["seed"]))
+        res.bootstrap = {name: float(sd) for name, sd in
+                         zip(list(model.param_names) + list(res.amplitudes), bs.std)}
+        log.info("bootstrap over delays (%d resamples, %d failed): std %s", fcfg["bootstrap"], bs.n_failed, res.bootstrap)
+    return res
+
+
+def _structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude=None):
+    pos = store.read(models, "traj_positions")
+    elements = [str(e) for e in models["element"][...]]
+    params = {}
+    for name, idx in fcfg["geometry"].items():
+        if max(idx) >= pos.shape[1]:
+            raise ConfigError(f"fit.geometry.{name}", f"atom indices {idx}", f"indices below {pos.shape[1]} atoms")
+        params[name] = geometry.distance(pos, *idx) if len(idx) == 2 else geometry.angle(pos, *idx)
+    ff = structure.fit_frames(diff[use], err[use], store.read(models, "traj_dS"), solvent=basis, params=params,
+                              delta_chi2=fcfg["delta_chi2"], amplitude=amplitude,
+                              min_sigma=fcfg["structure_min_sigma"])
+    for w in ff.warnings:
+        warnings.add(w)
+    sig = ff.significant
+    out = {"frame": _rows(np.where(sig, ff.best_frame, -1), use),
+           "frame_amplitude": _rows(ff.amplitude, use),
+           "structure_significant": _rows(sig.astype(float), use) == 1.0}
+    positions = np.full((use.size,) + pos.shape[1:], np.nan)
+    positions[np.flatnonzero(use)[sig]] = pos[ff.best_frame[sig]]
+    out["positions"] = positions
+    out["element"] = np.array(elements)
+    for name in params:
+        for kind, values in (("", ff.value[name]), ("_lower", ff.lower[name]), ("_upper", ff.upper[name])):
+            out[f"geometry_{name}{kind}"] = _rows(np.where(sig, values, np.nan), use)
+    if ff.at_end.any():
+        warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: the trajectory may be too short")
+    return out
+
+
+DIMS = {
+    "solute": ("delay", "q"), "model": ("delay", "q"), "residual": ("delay", "q"), "chi2": ("delay",),
+    "population": ("delay", "species"), "solvent_coef": ("delay", "term"), "solvent_coef_err": ("delay", "term"),
+    "svd_values": ("component",), "svd_noise": ("component",), "svd_u": ("delay", "component"),
+    "svd_v": ("component", "q"), "frame": ("delay",), "frame_amplitude": ("delay",),
+    "structure_significant": ("delay",), "positions": ("delay", "atom", "xyz"), "element": ("atom",),
+}
+
+
+def _write(out, q, delay, arrays, result, config, warnings):
+    units = result["units"]
+    fit = result.get("fit")
+    attrs = {"written": now(), "analysis_units": units, "absolute_scale_factor": result["factor"],
+             "svd_components": result["svd_count"], "solvent_terms": result["names"],
+             "warnings": list(warnings)}
+    if fit is not None:
+        attrs["fit_mode"] = config["fit"]["mode"]
+        attrs["fit_parameters"] = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
+                                       "units": "ps" if k in ("t0", "sigma", "lifetime") or k.startswith("tau") else ""}
+                                   for k, v in fit.params.items()}
+        for k, v in fit.amplitudes.items():
+            attrs["fit_parameters"][k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
+                                          "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
+        if getattr(fit, "bootstrap", None):
+            for k, sd in fit.bootstrap.items():
+                attrs["fit_parameters"][k]["bootstrap_error"] = sd
+        attrs.update({"fit_reduced_chi2": float(fit.red_chi2), "fit_converged": bool(fit.converged),
+                      "fit_at_bound": list(fit.at_bound), "fit_species": list(fit.species_names),
+                      "fit_correlation_names": list(fit.corr_names)})
+    with store.atomic_path(out) as tmp:
+        g = store.new_group(tmp, attrs)
+        store.write_array(g, "q", q, ["q"], units="1/Å")
+        store.write_array(g, "delay", delay, ["delay"], units="ps")
+        for name, values in arrays.items():
+            dims = DIMS.get(name, ("delay",))
+            u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
+                 "svd_v": units}.get(name)
+            if name.startswith("geometry_"):
+                u = "deg" if len(config["fit"]["geometry"].get(name[9:].replace("_lower", "").replace("_upper", ""), [0, 0])) == 3 else "Å"
+            if name == "solvent_coef" or name == "solvent_coef_err":
+                attrs_extra = {"terms": result["names"],
+                               "meaning": "per-delay coefficient of each term; dT in K on the absolute scale"}
+            else:
+                attrs_extra = None
+            store.write_array(g, name, values, dims, units=u, attrs=attrs_extra)
+        if result["names"]:
+            store.write_array(g, "term", np.array(result["names"]), ["term"])
+        if fit is not None:
+            store.write_array(g, "correlation", fit.correlation, ["param", "param_b"],
+                              attrs={"names": list(fit.corr_names)})
+            store.write_array(g, "species", np.array(fit.species_names), ["species"])
