@@ -104,3 +104,135 @@ def save(fig, path, dpi=130):
     with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=dpi, format="png")
     plt.close(fig)
+
+
+def _delay_axis(ax, delay):
+    """Symmetric-log delay axis: linear within +-1 ps, logarithmic beyond."""
+    if np.nanmax(np.abs(delay)) > 5:
+        ax.set_xscale("symlog", linthresh=1.0, linscale=1.5)
+    ax.axvline(0, color="0.8", lw=0.8, zorder=0)
+    ax.set_xlabel("delay (ps)")
+
+
+def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, solvent_err=None, terms=(),
+             chi2=None, params_text="", title=""):
+    """Fitted excited fraction, per-delay solvent coefficients and chi2 against delay.
+
+    Parameters
+    ----------
+    delay : ndarray (nd,), ps
+    population : ndarray (nd, ns), optional
+        Fitted populations times the excitation fraction.
+    frame_amplitude : ndarray (nd,), optional
+        Per-delay amplitude of the best structure.
+    solvent_coef, solvent_err : ndarray (nd, nterm), optional
+    terms : sequence of str
+        Names of the solvent coefficients.
+    chi2 : ndarray (nd,), optional
+        Reduced chi2 per delay.
+    params_text : str
+        Fitted parameters, printed in the figure.
+    """
+    rows = 1 + (solvent_coef is not None) + (chi2 is not None)
+    fig, axes = plt.subplots(rows, 1, figsize=(7, 2.4 * rows + 0.6), sharex=True, layout="constrained")
+    axes = np.atleast_1d(axes)
+    ax = axes[0]
+    if population is not None:
+        for j in range(population.shape[1]):
+            ax.plot(delay, population[:, j], "-", color=f"C{j}", label="fitted excited fraction")
+    if frame_amplitude is not None:
+        ax.plot(delay, frame_amplitude, "o", ms=3, color="k", label="per-delay structure amplitude")
+    ax.set_ylabel("excited fraction")
+    ax.legend(fontsize=8, loc="best")
+    if params_text:
+        ax.text(0.01, 0.97, params_text, transform=ax.transAxes, va="top", fontsize=7, family="monospace",
+                bbox=dict(facecolor="white", alpha=0.8, lw=0))
+    i = 1
+    if solvent_coef is not None:
+        ax = axes[i]
+        i += 1
+        for j, name in enumerate(terms):
+            if name == "normalization":
+                continue
+            e = None if solvent_err is None else solvent_err[:, j]
+            ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=name)
+        ax.axhline(0, color="0.7", lw=0.5)
+        ax.set_ylabel("solvent term (dT: K)")
+        ax.legend(fontsize=8)
+    if chi2 is not None:
+        ax = axes[i]
+        ax.plot(delay, chi2, "o-", ms=3, lw=0.8, color="C3")
+        ax.axhline(1, color="0.6", lw=0.8, ls="--")
+        ax.set_ylabel("reduced χ² per delay")
+    for ax in axes:
+        _delay_axis(ax, delay)
+    for ax in axes[:-1]:
+        ax.set_xlabel("")
+    axes[0].set_title(title or "kinetics")
+    return fig
+
+
+def structure_parameters(delay, values, lower, upper, units=None, title=""):
+    """Geometric parameters of the best-fitting structure per delay, with their intervals.
+
+    Parameters
+    ----------
+    delay : ndarray (nd,), ps
+    values, lower, upper : dict of name -> ndarray (nd,)
+        Value at the best frame and its interval (Å or degrees).
+    units : dict of name -> str, optional
+    """
+    n = max(1, len(values))
+    fig, axes = plt.subplots(n, 1, figsize=(7, 2.6 * n + 0.6), sharex=True, layout="constrained")
+    axes = np.atleast_1d(axes)
+    for ax, name in zip(axes, values):
+        v, lo, hi = values[name], lower[name], upper[name]
+        ok = np.isfinite(v)
+        ax.errorbar(delay[ok], v[ok], yerr=[v[ok] - lo[ok], hi[ok] - v[ok]], fmt="o", ms=3, lw=0.8, capsize=2)
+        ax.set_ylabel(f"{name} ({(units or {}).get(name, '')})")
+        _delay_axis(ax, delay)
+    for ax in axes[:-1]:
+        ax.set_xlabel("")
+    axes[0].set_title(title or "structure per delay (bars: Δχ² interval)")
+    return fig
+
+
+def residual_map(q, delay, residual, err, title=""):
+    """Normalized residuals (data - model) / error as a map; should look like noise."""
+    z = residual / err
+    fig, ax = plt.subplots(figsize=(7.5, 5.5), layout="constrained")
+    rows = np.arange(len(delay) + 1) - 0.5
+    qe = np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
+    mesh = ax.pcolormesh(qe, rows, z, cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -4, 4), shading="flat")
+    step = max(1, len(delay) // 18)
+    ticks = np.arange(0, len(delay), step)
+    ax.set_yticks(ticks, [f"{delay[i]:.3g}" for i in ticks])
+    ax.set_ylim(rows[-1], rows[0])
+    ax.set_xlabel("q (1/Å)")
+    ax.set_ylabel("delay (ps), one row per bin")
+    fig.colorbar(mesh, ax=ax).set_label("(data − model) / error")
+    ax.set_title(title or "fit residuals")
+    return fig
+
+
+def svd_summary(q, delay, values, noise, u, v, n_significant, title=""):
+    """Singular values against the noise reference, and the leading vectors."""
+    fig, axes = plt.subplots(1, 3, figsize=(12, 3.8), layout="constrained")
+    k = np.arange(1, len(values) + 1)
+    axes[0].semilogy(k, values, "o-", label="data")
+    axes[0].semilogy(k, noise, "s--", color="0.5", label="noise reference")
+    axes[0].set_xlabel("component")
+    axes[0].set_ylabel("singular value")
+    axes[0].legend(fontsize=8)
+    axes[0].set_title(f"{n_significant} significant")
+    m = max(1, min(3, len(values)))
+    for j in range(m):
+        axes[1].plot(delay, u[:, j], "o-", ms=2, lw=0.8, label=f"{j + 1}")
+        axes[2].plot(q, v[j], lw=0.8, label=f"{j + 1}")
+    _delay_axis(axes[1], delay)
+    axes[1].set_title("temporal vectors")
+    axes[2].set_xlabel("q (1/Å)")
+    axes[2].set_title("q vectors")
+    axes[2].legend(fontsize=8)
+    fig.suptitle(title or "SVD of the solute difference")
+    return fig

@@ -21,11 +21,11 @@ rule render:
     input:
         zstore("movie"),
     output:
-        f"{OUT}/figures/difference_map.png",
-        f"{OUT}/figures/difference_curves.png",
+        f"{OUT}/figures/.done",
     params:
         section("render", "run"),
     run:
         from movieproc.stages import render
 
         render.run(folder(input[0]), f"{OUT}/figures", config)
+        Path(f"{OUT}/figures/.done").write_text("figures written\n")
