@@ -196,3 +196,26 @@ def test_bad_arguments():
         integration.integrate(np.zeros((2, 32, 40), bool), b)
     with pytest.raises(ValueError, match="variance"):
         integration.integrate(np.zeros((2, 32, 40)), b, variance="poisson")
+
+
+@pytest.mark.parametrize("n_regressors", [1, 2])
+def test_regressor_channels_match_the_sparse_reference(n_regressors):
+    # one regressor: the 4-coefficient kernel path; two: the general path
+    det, geo, factor = _setup(shape=(80, 90))
+    rng = np.random.default_rng(9)
+    regs = [rng.uniform(-0.5, 1.0, geo.shape) for _ in range(n_regressors)]
+    b = integration.build_binning(geometry.q_map(geo, 12.0), np.linspace(0.5, 2.5, 50), factor=factor,
+                                  regressors=regs)
+    frames = rng.gamma(2.0, 50.0, (5, *geo.shape)).astype(np.float32)
+    res = integration.bin_sums(frames, b)
+    x = frames.reshape(5, -1).astype(np.float64).T
+    for ch in range(n_regressors + 1):
+        ref = (integration.weight_matrix(b, ch) @ x).T
+        # float32 sums, as in test_kernel_matches_the_sparse_matrix_reference
+        np.testing.assert_allclose(res.sums[:, ch, 0], ref, rtol=1e-5, atol=1e-5 * np.abs(ref).max())
+    # moments: sum w h_a h_b, here checked for (0, last) against the tent weights times the regressor
+    tent = integration.weight_matrix(integration.build_binning(geometry.q_map(geo, 12.0), b.grid))
+    pairs = [(a, c) for a in range(n_regressors + 1) for c in range(a, n_regressors + 1)]
+    k = pairs.index((0, n_regressors))
+    # (the reference matrix holds the weights as float32: relative rounding 6e-8)
+    np.testing.assert_allclose(res.moments[0, k, 0], tent @ regs[-1].ravel(), rtol=2e-7)

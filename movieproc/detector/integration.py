@@ -346,6 +346,20 @@ def _accumulate(frames, row, coef, n_rows, saturation, lanes, out):  # pragma: n
                         v = tile[j, f]
                         part[r, 0, f] += c0 * v
                         part[r, 1, f] += c1 * v
+            elif width == 4:
+                for j in range(m):
+                    p = p0 + j
+                    r = row[p]
+                    c0 = coef[p, 0]
+                    c1 = coef[p, 1]
+                    c2 = coef[p, 2]
+                    c3 = coef[p, 3]
+                    for f in range(lanes):
+                        v = tile[j, f]
+                        part[r, 0, f] += c0 * v
+                        part[r, 1, f] += c1 * v
+                        part[r, 2, f] += c2 * v
+                        part[r, 3, f] += c3 * v
             else:
                 for j in range(m):
                     p = p0 + j
