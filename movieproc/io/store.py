@@ -92,7 +92,12 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
     data = np.asarray(data) if dtype is None else np.asarray(data, dtype=dtype)
     if data.ndim != len(dims):
         raise ValueError(f"array '{name}' has {data.ndim} axes but {len(dims)} dimension names")
-    if data.dtype == bool:
+    zdtype = data.dtype
+    if data.dtype.kind in "UOT":
+        # variable-length UTF-8 strings: the string type zarr v3 specifies
+        zdtype, fill = str, ""
+        data = data.astype(str)
+    elif data.dtype == bool:
         fill = False
     elif data.dtype.kind in "iu":
         fill = 0
@@ -101,7 +106,7 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
     arr = group.create_array(
         name,
         shape=data.shape,
-        dtype=data.dtype,
+        dtype=zdtype,
         chunks=chunks if chunks is not None else (data.shape if data.size and data.nbytes < 2**26 else "auto"),
         dimension_names=list(dims),
         fill_value=fill,

@@ -91,7 +91,8 @@ def run(binned_path, models_path, out, config: dict):
     low = store.read(b, "low_count")
     off_mean = store.read(b, "off_mean").astype(float)
     models = store.open_group(models_path, "model store") if models_path else None
-    if models is not None and not np.allclose(store.read(models, "q"), q, rtol=1e-9, atol=1e-12):
+    mq = store.read(models, "q") if models is not None else None
+    if models is not None and (mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12)):
         raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {binned_path}")
 
     factor = _absolute_scale(config, q, models, warnings)
@@ -133,6 +134,15 @@ def run(binned_path, models_path, out, config: dict):
     # --- fits
     fcfg = config["fit"]
     fit_res = None
+    if fcfg["mode"] != "none" and fcfg["delay_range_ps"]:
+        lo, hi = fcfg["delay_range_ps"]
+        outside = use & ((delay < lo) | (delay > hi))
+        if outside.any():
+            log.info("fit.delay_range_ps [%g, %g]: %d bins left out of the analysis", lo, hi, int(outside.sum()))
+        use = use & ~outside
+    if fcfg["mode"] != "none" and use.sum() < fcfg["min_delays"]:
+        raise DataError(f"{int(use.sum())} delay bins with enough shots for the fit; fit.min_delays asks for "
+                        f"{fcfg['min_delays']} (check binning.min_shots and fit.delay_range_ps)")
     if fcfg["mode"] != "none":
         spread = (delay[use], store.read(b, "delay_spread")[use])
         fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread)
