@@ -96,7 +96,7 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
     if data.dtype.kind in "UOT":
         # variable-length UTF-8 strings: the string type zarr v3 specifies
         zdtype, fill = str, ""
-        data = data.astype(str)
+        data = data.astype(np.dtypes.StringDType())
     elif data.dtype == bool:
         fill = False
     elif data.dtype.kind in "iu":
