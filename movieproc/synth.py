@@ -317,13 +317,41 @@ def synthesize_run(scenario_path, n_shots, seed, files, truth_path, mode="curves
     files = [Path(f) for f in files]
     bounds = np.linspace(0, n, len(files) + 1).astype(int)
 
-    def curves_for(sl):
+    def ideal_for(sl):
+        """Noise-free detected intensity per shot (e.u. times the shot's relative pulse energy)."""
         dS = _interp_rows(t_grid, truth["dS"], hidden["true_delay"][sl])
         ideal = S[None, :] + table["pump_on"][sl, None] * dS + drift[sl, None] * drift_shape[None, :]
         ideal = np.where(hidden["outlier"][sl, None], ideal * wobble[None, :], ideal)
-        counts = phot * gain[sl, None] * ideal
+        return gain[sl, None] * ideal
+
+    def curves_for(sl):
+        counts = phot * ideal_for(sl)
         noisy = counts + np.sqrt(counts) * rng.standard_normal(counts.shape)
         return (noisy / phot).astype(np.float32)  # detector units: e.u.-scaled photons
+
+    if mode == "frames":
+        from .detector import forward
+
+        det = scenario["detector"]
+        fr = scenario["frames"]
+        shape = tuple(det["shape_px"])
+        hot = forward.pick_hot_pixels(shape, fr["hot_pixels"], rng)
+        dark = forward.render_dark(shape, fr["dark_frames"], rng, level=fr["dark_level"], noise=fr["dark_noise"],
+                                   hot_pixels=hot)
+        out_dir = files[0].parent
+        out_dir.mkdir(parents=True, exist_ok=True)
+        with store.atomic_path(out_dir / "dark.npy") as tmp:
+            with open(tmp, "wb") as fh:
+                np.save(fh, dark)
+        with store.atomic_path(out_dir / "mask.npy") as tmp:
+            with open(tmp, "wb") as fh:
+                np.save(fh, forward.default_mask(det, shape))
+        pedestal = np.full(shape, fr["dark_level"])
+
+        def frames_for(sl):
+            return forward.render_frames(q, ideal_for(sl), table["photon_energy"][sl], det, rng, shape=shape,
+                                         photons_per_pixel=fr["photons_per_pixel"] / norm, hot_pixels=hot,
+                                         dark=pedestal)
 
     for i, path in enumerate(files):
         lo, hi = int(bounds[i]), int(bounds[i + 1])
@@ -339,11 +367,18 @@ def synthesize_run(scenario_path, n_shots, seed, files, truth_path, mode="curves
                     h5.create_dataset("q", data=q)
                     ds = h5.create_dataset("curves", shape=(hi - lo, q.size), dtype="f4",
                                            chunks=(min(chunk, hi - lo), q.size))
-                    for a in range(lo, hi, chunk):
-                        b = min(a + chunk, hi)
-                        ds[a - lo:b - lo] = curves_for(slice(a, b))
+                    fill = curves_for
+                elif mode == "frames":
+                    ds = h5.create_dataset("frames", shape=(hi - lo, *shape), dtype="u2",
+                                           chunks=(min(64, hi - lo), *shape))
+                    fill = frames_for
                 else:
-                    raise NotImplementedError("frames mode is written by the detector's forward model")
+                    from .errors import ConfigError
+
+                    raise ConfigError("run.generate.mode", repr(mode), "curves or frames")
+                for a in range(lo, hi, chunk):
+                    b = min(a + chunk, hi)
+                    ds[a - lo:b - lo] = fill(slice(a, b))
 
     diff_true = normalized_difference(S, truth["dS"], q, norm_q_range)
     with store.atomic_path(truth_path) as tmp:
