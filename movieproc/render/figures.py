@@ -236,3 +236,33 @@ def svd_summary(q, delay, values, noise, u, v, n_significant, title=""):
     axes[2].legend(fontsize=8)
     fig.suptitle(title or "SVD of the solute difference")
     return fig
+
+
+def realspace(r, delay, values, delays=None, title="", units=""):
+    """Real-space difference r^2 dS(r) at chosen delays: where distances are lost and gained.
+
+    Parameters
+    ----------
+    r : ndarray (nr,), Å
+    delay : ndarray (nd,), ps
+    values : ndarray (nd, nr)
+    delays : sequence of float, optional
+        Delays to show (nearest bins); default up to 6 spread over the run.
+    """
+    ok = np.isfinite(values).all(axis=1)
+    if delays is None:
+        cand = np.flatnonzero(ok)
+        pick = cand[np.unique(np.linspace(0, cand.size - 1, min(6, cand.size)).round().astype(int))]
+    else:
+        cand = np.flatnonzero(ok)
+        pick = np.unique([cand[int(np.argmin(np.abs(delay[cand] - d)))] for d in delays])
+    fig, ax = plt.subplots(figsize=(6.5, 4.2), layout="constrained")
+    colors = plt.cm.viridis(np.linspace(0, 0.9, len(pick)))
+    for c, i in zip(colors, pick):
+        ax.plot(r, values[i], color=c, lw=1.2, label=f"{delay[i]:.3g} ps")
+    ax.axhline(0, color="0.6", lw=0.6)
+    ax.set_xlabel("r (Å)")
+    ax.set_ylabel("r²ΔS(r)" + (f" ({units})" if units else ""))
+    ax.legend(fontsize=8, ncols=2)
+    ax.set_title(title or "real-space difference (damped sine transform)")
+    return fig

@@ -31,7 +31,7 @@ from ..errors import ConfigError, DataError, InputError
 from ..fitting import structure, varpro
 from ..fitting.models import SpeciesModel, TrajectoryModel
 from ..io import store
-from ..scattering import geometry
+from ..scattering import geometry, realspace
 from ..signals import scaling, svd
 from ..signals.solvent import estimate_heating_curve, fit_solvent
 from .common import Warnings, now
@@ -169,6 +169,10 @@ def run(binned_path, models_path, out, config: dict):
             coef = coef_err = None
             solute = diff[use]
     arrays["solute"] = _rows(solute, use)
+    # real-space view: which distances change (damped sine transform of q * solute)
+    r = np.arange(0.0, 10.0 + 1e-9, 0.05)
+    arrays["solute_realspace"] = _rows(realspace.sine_transform(q, solute, r, kappa=0.03), use)
+    arrays["r"] = r
     if coef is not None:
         arrays["solvent_coef"] = _rows(coef, use)
         arrays["solvent_coef_err"] = _rows(coef_err, use)
@@ -295,6 +299,7 @@ DIMS = {
     "svd_values": ("component",), "svd_noise": ("component",), "svd_u": ("delay", "component"),
     "svd_v": ("component", "q"), "frame": ("delay",), "frame_amplitude": ("delay",),
     "structure_significant": ("delay",), "positions": ("delay", "atom", "xyz"), "element": ("atom",),
+    "r": ("r",), "solute_realspace": ("delay", "r"),
 }
 
 
@@ -325,10 +330,13 @@ def _write(out, q, delay, arrays, result, config, warnings):
         for name, values in arrays.items():
             dims = DIMS.get(name, ("delay",))
             u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
-                 "svd_v": units}.get(name)
+                 "svd_v": units, "r": "Å", "solute_realspace": f"({units}) / Å"}.get(name)
             if name.startswith("geometry_"):
                 u = "deg" if len(config["fit"]["geometry"].get(name[9:].replace("_lower", "").replace("_upper", ""), [0, 0])) == 3 else "Å"
-            if name == "solvent_coef" or name == "solvent_coef_err":
+            if name == "solute_realspace":
+                attrs_extra = {"meaning": "r^2 dS(r) = r / (2 pi^2) * integral of q dS(q) sin(q r) exp(-kappa q^2) dq, "
+                                          "kappa = 0.03 Å^2: which distances change"}
+            elif name == "solvent_coef" or name == "solvent_coef_err":
                 attrs_extra = {"terms": result["names"],
                                "meaning": "per-delay coefficient of each term; dT in K on the absolute scale"}
             else:

@@ -63,6 +63,10 @@ def run(movie_path, out_dir, config: dict):
     if model is not None:
         save(figures.residual_map(q, delay, store.read(m, "residual"), err, title=f"{name}: fit residuals"),
              "residual_map.png")
+    if "solute_realspace" in m:
+        save(figures.realspace(store.read(m, "r"), delay, store.read(m, "solute_realspace"), rcfg["delays_ps"],
+                               title=f"{name}: real-space difference (solute)",
+                               units=m["solute_realspace"].attrs.get("units", "")), "realspace.png")
     geo = sorted(k[len("geometry_"):] for k in m.array_keys()
                  if k.startswith("geometry_") and not k.endswith(("_lower", "_upper")))
     if geo:
