@@ -1,0 +1,119 @@
+"""Tests of movieproc.shots.selection: cuts, reason bits, robust outlier scores, counts;
+and the ``select`` stage's refusal of runs it cannot difference."""
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from conftest import leftovers
+from movieproc import config as C
+from movieproc.errors import DataError
+from movieproc.shots import selection as S
+from movieproc.stages import ingest, select
+
+
+def test_mad_factor_is_normal_consistency_constant():
+    # 1 / Phi^-1(3/4) (scipy.stats.norm.ppf) = 1.482602218505602
+    assert S.MAD_TO_SIGMA == pytest.approx(1.0 / stats.norm.ppf(0.75), rel=1e-4)
+
+
+def test_pulse_energy_flags():
+    e = np.array([0.1, 0.5, 1.0, 1.5, 3.0, np.nan])
+    np.testing.assert_array_equal(S.pulse_energy_flags(e), [0, 0, 0, 0, 0, 1])  # NaN always cut
+    np.testing.assert_array_equal(S.pulse_energy_flags(e, min=0.5, max=1.5), [1, 0, 0, 0, 1, 1])
+    # median of the finite values = 1.0 (hand): below 0.3 cut
+    np.testing.assert_array_equal(S.pulse_energy_flags(e, min_fraction_of_median=0.3), [1, 0, 0, 0, 0, 1])
+
+
+def test_timing_flags_bits():
+    edge = np.array([np.nan, 50.0, 500.0, 500.0, 900.0, np.nan])
+    amp = np.array([0.1, 0.1, 0.001, 0.1, 0.001, np.nan])
+    f = S.timing_flags(edge, amp, require_edge=True, min_amplitude=0.02, edge_range=(80, 880))
+    R = S.REASONS
+    expect = [R["timing_missing"], R["timing_range"], R["timing_amplitude"], 0,
+              R["timing_range"] | R["timing_amplitude"], R["timing_missing"]]
+    np.testing.assert_array_equal(f, expect)
+    assert f.dtype == np.uint8
+    np.testing.assert_array_equal(S.timing_flags(edge, require_edge=False), 0)
+
+
+def test_reason_bits_are_distinct_powers_of_two():
+    bits = list(S.REASONS.values())
+    assert len(set(bits)) == len(bits)
+    assert all(b > 0 and b & (b - 1) == 0 for b in bits)
+
+
+def test_reason_counts_by_hand():
+    R = S.REASONS
+    flags = np.array([0, R["pulse_energy"], R["pulse_energy"] | R["outlier"], 0, R["timing_missing"]], np.uint8)
+    c = S.reason_counts(flags)
+    assert c["pulse_energy"] == 2 and c["outlier"] == 1 and c["timing_missing"] == 1
+    assert c["timing_amplitude"] == 0 and c["timing_range"] == 0
+    assert (c["total"], c["kept"], c["dropped"]) == (5, 2, 3)
+
+
+def test_outlier_scores_near_one_for_noise_and_large_for_a_distorted_shot():
+    rng = np.random.default_rng(0)
+    n, nq = 400, 300
+    q = np.linspace(0.5, 5, nq)
+    base = 1 + 0.3 * np.exp(-q)
+    curves = base + 0.01 * rng.standard_normal((n, nq))
+    curves[17] *= 1 + 0.05 * np.sin(3 * q)  # distorted shot
+    scores = S.outlier_scores(curves)
+    # rms of robust z over q: for normal noise E[z^2] = 1 (MAD scaled to sigma), so about 1
+    normal = np.delete(scores, 17)
+    assert np.median(normal) == pytest.approx(1.0, abs=0.05)
+    assert scores[17] > 3
+    flagged = S.robust_outliers(scores, 6.0)
+    np.testing.assert_array_equal(np.flatnonzero(flagged), [17])
+
+
+def test_robust_outliers_ignores_nan_and_zero_spread():
+    s = np.array([1.0, 1.1, 0.9, 1.05, 0.95, np.nan, 50.0])
+    np.testing.assert_array_equal(S.robust_outliers(s, 6.0), [0, 0, 0, 0, 0, 0, 1])
+    np.testing.assert_array_equal(S.robust_outliers(np.ones(5), 3.0), 0)
+
+
+# ------------------------------------------------------------------ the select stage on bad runs
+
+def _config(*extra):
+    return C.load(overrides=["compute.progress=false", "compute.workers=1", "compute.chunk_shots=64",
+                             "selection.outliers.window=60", "selection.timing.edge_range_px=null", *extra])
+
+
+def _ingest(make_run, tmp_path, **kw):
+    f = make_run(**kw)
+    shots = tmp_path / "out" / "shots.zarr"
+    ingest.run([str(f)], shots, _config())
+    return shots
+
+
+def test_select_counts_reasons(make_run, tmp_path):
+    def edit(d):
+        d["shots/pulse_energy"][[3, 10, 11]] = 0.01  # below 30 % of the median
+        d["shots/timing_edge"][[5, 10]] = np.nan
+
+    shots = _ingest(make_run, tmp_path, edit=edit)
+    counts = select.run(shots, tmp_path / "out" / "selection.zarr", _config())
+    assert counts["pulse_energy"] == 3 and counts["timing_missing"] == 2
+    assert counts["total"] == 240 and counts["kept"] == 240 - 4 - counts["outlier"]
+    assert counts["kept_pump_on"] + counts["kept_pump_off"] == counts["kept"]
+
+
+def test_select_without_pump_off_shots_is_a_data_error(make_run, tmp_path):
+    def edit(d):
+        d["shots/pump_on"][:] = True
+
+    shots = _ingest(make_run, tmp_path, edit=edit)
+    out = tmp_path / "out" / "selection.zarr"
+    with pytest.raises(DataError, match="pump-off"):
+        select.run(shots, out, _config())
+    assert not out.exists() and leftovers(tmp_path / "out") == []
+
+
+def test_select_with_every_shot_cut_is_a_data_error(make_run, tmp_path):
+    shots = _ingest(make_run, tmp_path)
+    out = tmp_path / "out" / "selection.zarr"
+    with pytest.raises(DataError, match="every one of the 240 shots was cut"):
+        select.run(shots, out, _config("selection.pulse_energy.min=1000"))
+    assert not out.exists() and leftovers(tmp_path / "out") == []

@@ -1,0 +1,206 @@
+"""End-to-end tests of the workflow and the ``movieproc`` command: the demo, re-running only
+what a config change touches, summaries, the synthesizer, and bad input through the CLI."""
+
+import shutil
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+
+from conftest import SCENARIO, leftovers, run_datasets, write_h5
+from movieproc import cli
+from movieproc import config as C
+from movieproc.io import runfile
+from movieproc.workflow import run_workflow
+
+STAGE_OUTPUTS = ["shots.zarr", "selection.zarr", "delays.zarr", "bins.zarr", "binned.zarr", "movie.zarr"]
+
+
+# ------------------------------------------------------------------ the demo command
+
+@pytest.mark.slow
+def test_demo_command_writes_movie_and_figures(demo_run):
+    p = demo_run.proc
+    assert p.returncode == 0, p.stderr[-3000:]
+    assert "movie:" in p.stdout and "movie.zarr" in p.stdout
+    for name in ("difference_map.png", "difference_curves.png"):
+        png = demo_run.out / "figures" / name
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature
+    for name in STAGE_OUTPUTS:
+        assert (demo_run.out / name).is_dir()
+    assert leftovers(demo_run.work) == []
+    cfg = C.load()  # the demo config the command ran with
+    assert runfile.inspect_run(demo_run.files).n_shots == cfg["run"]["generate"]["shots"]
+
+
+@pytest.mark.slow
+def test_movie_opens_with_xarray_named_dims_and_units(demo_run):
+    assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
+    ds = xr.open_zarr(demo_run.movie, consolidated=False)
+    assert ds["diff"].dims == ("delay", "q") and ds["diff_err"].dims == ("delay", "q")
+    assert ds["n_shots"].dims == ("delay",)
+    assert "delay" in ds.coords and "q" in ds.coords
+    assert ds["delay"].attrs["units"] == "ps" and ds["q"].attrs["units"] == "1/Å"
+    for name in ("diff", "diff_err"):
+        assert ds[name].attrs["units"]
+    assert np.all(np.diff(ds["delay"].values) > 0)
+    edges = C.load()["binning"]["edges_ps"]
+    assert ds.sizes["delay"] == len(edges) - 1 and ds.sizes["q"] == ds["q"].size
+    # delays lie inside their bins (bin means of corrected delays)
+    assert np.all((ds["delay"].values >= edges[:-1]) & (ds["delay"].values <= edges[1:]))
+    assert np.all(np.isfinite(ds["diff"].values)) and np.all(ds["diff_err"].values > 0)
+    a = ds.attrs
+    assert a["config"]["timing"]["sign"] == -1 and isinstance(a["warnings"], list)
+    assert {"numpy", "zarr", "movieproc"} <= set(a["versions"])
+    assert len(a["input_files"]) == 2 and len(a["input_checksums"]) == 2
+
+
+@pytest.mark.slow
+def test_summary_of_the_movie(demo_run, capsys):
+    assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
+    assert cli.main(["summary", str(demo_run.movie)]) == 0
+    out = capsys.readouterr().out
+    g = zarr.open_group(str(demo_run.movie), mode="r")
+    delay = g["delay"][...]
+    assert f"delays: {delay.size} bins from {delay.min():.4g} to {delay.max():.4g} ps" in out
+    assert f"warnings: {len(g.attrs['warnings'])}" in out
+
+
+# ------------------------------------------------------------------ re-running after a config change
+
+@pytest.mark.slow
+def test_rebinning_and_recalibration_rerun_only_what_follows(tmp_path):
+    base = [f"output_dir={tmp_path / 'out'}",
+            f"run.files=['{tmp_path / 'in' / 'run_000.h5'}', '{tmp_path / 'in' / 'run_001.h5'}']",
+            f"run.generate.truth={tmp_path / 'in' / 'truth.zarr'}",
+            f"run.generate.scenario={tmp_path / 'demo_data' / SCENARIO.name}", "run.generate.shots=2400",
+            "compute.progress=false"]
+    out = tmp_path / "out"
+    # the demo inputs (scenario, structures) the config names relative to the working directory
+    shutil.copytree(SCENARIO.parent, tmp_path / "demo_data")
+
+    def remade(updated):
+        """Stage stores among the files Snakemake remade (a store may be tracked as <store>/zarr.json)."""
+        names = set()
+        for p in map(Path, updated):
+            names.add(p.name)
+            names.update(part for part in p.parts if part.endswith(".zarr"))
+        return {n for n in STAGE_OUTPUTS if n in names}, names
+
+    first = run_workflow(C.load(overrides=base), cores=2, workdir=tmp_path)
+    made, _ = remade(first)
+    assert made == set(STAGE_OUTPUTS)
+    assert run_workflow(C.load(overrides=base), cores=2, workdir=tmp_path) == []  # nothing changed
+
+    rebin = base + ["binning.mode=width", "binning.width_ps=0.1", "binning.start_ps=-1", "binning.stop_ps=2"]
+    made, names = remade(run_workflow(C.load(overrides=rebin), cores=2, workdir=tmp_path))
+    assert made == {"bins.zarr", "binned.zarr", "movie.zarr"}
+    assert "run_000.h5" not in names and "truth.zarr" not in names
+    edges = zarr.open_group(str(out / "bins.zarr"), mode="r")["edges"][...]
+    np.testing.assert_allclose(edges, np.linspace(-1, 2, 31), atol=1e-9)  # 30 bins of 0.1 ps
+    assert xr.open_zarr(out / "movie.zarr", consolidated=False).sizes["delay"] == 30
+
+    cal = [-1375.0, 2.8, 0.0005]
+    recal = rebin + [f"timing.calibration_fs={cal}"]
+    made, names = remade(run_workflow(C.load(overrides=recal), cores=2, workdir=tmp_path))
+    assert made == {"delays.zarr", "bins.zarr", "binned.zarr", "movie.zarr"}
+    # the new delays follow the documented formula: stage - t0 + sign * (P(edge) - P(edge0)) / 1000
+    with h5py.File(tmp_path / "in" / "run_000.h5") as h5:
+        stage, edge = h5["shots/stage_delay"][...], h5["shots/timing_edge"][...]
+    tim = C.load(overrides=recal)["timing"]
+    poly = np.polynomial.polynomial.polyval
+    expect = stage - tim["time_zero_ps"] + tim["sign"] * (poly(edge, cal) - poly(tim["edge_at_time_zero_px"], cal)) / 1000
+    got = zarr.open_group(str(out / "delays.zarr"), mode="r")["delay"][: stage.size]
+    np.testing.assert_allclose(got, expect, rtol=1e-12, atol=1e-12)
+    assert leftovers(tmp_path) == []
+
+
+# ------------------------------------------------------------------ the command line
+
+def test_summary_of_run_files(tmp_path, capsys):
+    a = run_datasets(n=90, seed=1)
+    a["shots/timing_edge"][[4, 5, 60]] = np.nan
+    b = run_datasets(n=60, seed=2, off_every=4)
+    b["shots/pulse_id"] = b["shots/pulse_id"] + 200
+    b["shots/timing_edge"][[0]] = np.nan
+    fa, fb = write_h5(tmp_path / "a.h5", a), write_h5(tmp_path / "b.h5", b)
+    assert cli.main(["summary", str(fa), str(fb)]) == 0
+    out = capsys.readouterr().out
+    on = int(a["shots/pump_on"].sum() + b["shots/pump_on"].sum())  # 60 + 45 (every 3rd, every 4th off)
+    assert "shots: 150 (90 in a.h5, 60 in b.h5)" in out
+    assert f"pump on: {on}, pump off: {150 - on}" in out
+    assert "missing on 4 (2.7 %)" in out  # 4 NaN edges of 150 shots
+    # with a config, the timing spread in fs
+    assert cli.main(["summary", str(fa), "--set", "timing.calibration_fs=[0.0, 2.0]"]) == 0
+    out = capsys.readouterr().out
+    edge = a["shots/timing_edge"]
+    assert f"{np.std(2.0 * edge[np.isfinite(edge)]):.1f} fs rms" in out  # 2 fs/px times the edge spread
+
+
+def test_synth_command_writes_run_files_and_truth(tmp_path, capsys):
+    out = tmp_path / "synth"
+    assert cli.main(["synth", str(out), "--shots", "300", "--files", "2", "--seed", "5"]) == 0
+    files = [out / "run_000.h5", out / "run_001.h5"]
+    info = runfile.inspect_run(files)
+    assert info.n_shots == 300 and info.counts == [150, 150] and info.mode == "curves"
+    truth = xr.open_zarr(out / "truth.zarr", consolidated=False)
+    assert truth["diff_true"].dims == ("time", "q") and truth.sizes["shot"] == 300
+    assert "movieproc process" in capsys.readouterr().out
+    # same seed, same shots
+    again = tmp_path / "again"
+    assert cli.main(["synth", str(again), "--shots", "300", "--files", "2", "--seed", "5"]) == 0
+    with h5py.File(files[1]) as h1, h5py.File(again / "run_001.h5") as h2:
+        np.testing.assert_array_equal(h1["curves"][...], h2["curves"][...])
+        np.testing.assert_array_equal(h1["shots/timing_edge"][...], h2["shots/timing_edge"][...])
+
+
+@pytest.mark.parametrize("edit, needle", [
+    (lambda d: d.pop("shots/timing_edge"), "shots/timing_edge: found no such dataset"),
+    (lambda d: d.update({"shots/pump_on": d["shots/pump_on"][:-1]}), "shots/pump_on: found length 239; expected length 240"),
+], ids=["missing-dataset", "unequal-lengths"])
+def test_process_rejects_a_bad_run_file_before_running(tmp_path, monkeypatch, capsys, edit, needle):
+    data = run_datasets()
+    edit(data)
+    f = write_h5(tmp_path / "bad.h5", data)
+    monkeypatch.chdir(tmp_path)
+    assert cli.main(["process", str(f), "--out", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("movieproc: error: ") and f"{f}:{needle}" in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_bins_outside_every_delay_are_a_data_error(tmp_path):
+    from movieproc.errors import DataError
+    from movieproc.stages import bins, delays, ingest, select
+
+    f = write_h5(tmp_path / "in" / "run.h5", run_datasets())
+    out = tmp_path / "out"
+    cfg = C.load(overrides=["compute.progress=false", "compute.workers=1", "selection.outliers.window=60",
+                            "binning.mode=edges", "binning.edges_ps=[100.0, 200.0]"])
+    ingest.run([str(f)], out / "shots.zarr", cfg)
+    select.run(out / "shots.zarr", out / "selection.zarr", cfg)
+    delays.run(out / "shots.zarr", out / "delays.zarr", cfg)
+    with pytest.raises(DataError, match="no kept pump-on shot falls inside the bins 100..200 ps"):
+        bins.run(out / "shots.zarr", out / "selection.zarr", out / "delays.zarr", out / "bins.zarr", cfg)
+    assert not (out / "bins.zarr").exists() and leftovers(out) == []
+
+
+@pytest.mark.slow
+def test_process_run_without_pump_off_shots_fails_cleanly(tmp_path, monkeypatch, capfd):
+    data = run_datasets(n=300)
+    data["shots/pump_on"][:] = True
+    f = write_h5(tmp_path / "nooff.h5", data)
+    shutil.copytree(SCENARIO.parent, tmp_path / "demo_data")  # the default config's structure files
+    monkeypatch.chdir(tmp_path)
+    rc = cli.main(["process", str(f), "--out", str(tmp_path / "out"), "--set", "compute.progress=false"])
+    assert rc == 2
+    err = capfd.readouterr().err
+    assert "movieproc: error: " in err
+    assert "no pump-off shot survived the selection" in err  # the stage's DataError reaches the user
+    assert (tmp_path / "out" / "shots.zarr").is_dir()  # the stage before is kept
+    for name in STAGE_OUTPUTS[1:]:
+        assert not (tmp_path / "out" / name).exists()
+    assert leftovers(tmp_path / "out") == []
