@@ -63,7 +63,7 @@ def cmd_process(args):
     overrides = [f"run.files={[str(Path(f)) for f in args.files]!r}", "run.generate=null"]
     out = args.out or f"results/{Path(args.files[0]).stem}"
     overrides += [f"output_dir={out}", f"run.name={args.name or Path(args.files[0]).stem}"]
-    config = mpconfig.load(args.config, overrides + args.overrides)
+    config = mpconfig.load(args.config or mpconfig.ROOT / "config" / "process.yaml", overrides + args.overrides)
     _run(config, args)
 
 
@@ -99,7 +99,7 @@ def build_parser():
     _add_config_args(p)
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("process", help="process run files with the default config plus overrides")
+    p = sub.add_parser("process", help="process run files with generic settings (config/process.yaml) plus overrides")
     p.add_argument("files", nargs="+", help="HDF5 run files (shots concatenated in file-name order)")
     p.add_argument("--out", "-o", help="output folder (default results/<first file name>)")
     p.add_argument("--name", help="run label for figures")

@@ -11,6 +11,7 @@ under ``provenance.overrides``.
 from __future__ import annotations
 
 import copy
+import re
 from pathlib import Path
 
 import jsonschema
@@ -21,6 +22,26 @@ from .errors import ConfigError
 ROOT = Path(__file__).resolve().parents[1]
 SCHEMA_DIR = ROOT / "config" / "schemas"
 DEFAULT_CONFIG = ROOT / "config" / "config.yaml"
+
+
+class _Loader(yaml.SafeLoader):
+    """YAML loader that also reads 1e-3 and 5E4 as floats (YAML 1.2), not strings."""
+
+
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"""^(?:[-+]?(?:[0-9][0-9_]*)\.[0-9_]*(?:[eE][-+]?[0-9]+)?
+                |[-+]?(?:[0-9][0-9_]*)(?:[eE][-+]?[0-9]+)
+                |\.[0-9_]+(?:[eE][-+][0-9]+)?
+                |[-+]?\.(?:inf|Inf|INF)
+                |\.(?:nan|NaN|NAN))$""", re.X),
+    list("-+0123456789."),
+)
+
+
+def read_yaml(text: str):
+    """Parse YAML text the way every movieproc file and override is read."""
+    return yaml.load(text, Loader=_Loader)
 
 
 def load_schema() -> dict:
@@ -45,7 +66,7 @@ def parse_override(text: str):
     if not key or any(not part for part in key.split(".")):
         raise ConfigError(key, "an empty key part", "dotted.key=value")
     try:
-        value = yaml.safe_load(raw)
+        value = read_yaml(raw)
     except yaml.YAMLError as exc:
         raise ConfigError(key, f"a value YAML cannot parse ({raw!r}: {exc})", "a YAML value") from None
     return key.split("."), value
@@ -143,7 +164,7 @@ def load(path=None, overrides=None) -> dict:
     if not path.exists():
         raise ConfigError("--config", f"no file {path}", "a YAML config file")
     try:
-        raw = yaml.safe_load(path.read_text()) or {}
+        raw = read_yaml(path.read_text()) or {}
     except yaml.YAMLError as exc:
         raise ConfigError(str(path), f"YAML that does not parse ({exc})", "a YAML mapping") from None
     if not isinstance(raw, dict):

@@ -46,14 +46,23 @@ def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progres
     label : str
         Name used in the log line.
     """
-    tasks = [dask.delayed(fn)(a, b) for a, b in ranges]
+    def guarded(a, b):
+        # Capture a failure instead of raising inside dask: dask's local schedulers
+        # return on the first exception while other chunks still run, and their late
+        # writes could land after the caller has cleaned up. Raise after all finished.
+        try:
+            return True, fn(a, b)
+        except BaseException as exc:  # noqa: BLE001 - re-raised below, unchanged
+            return False, exc
+
+    tasks = [dask.delayed(guarded)(a, b) for a, b in ranges]
     log.info("%s: %d tasks on %s with %d worker(s)", label, len(tasks), scheduler, workers)
     if scheduler.startswith("tcp://") or scheduler.startswith("tls://"):
         from dask.distributed import Client
 
         with Client(scheduler) as client:
             futures = client.compute(tasks)
-            return client.gather(futures)
+            return _unwrap(client.gather(futures))
     if scheduler not in ("threads", "processes", "synchronous"):
         raise ValueError(f"unknown scheduler {scheduler!r}")
     if progress:
@@ -63,4 +72,12 @@ def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progres
     else:
         bar = nullcontext()
     with bar:
-        return list(dask.compute(*tasks, scheduler=scheduler, num_workers=max(1, int(workers))))
+        return _unwrap(dask.compute(*tasks, scheduler=scheduler, num_workers=max(1, int(workers))))
+
+
+def _unwrap(results):
+    """Values of the guarded tasks, or the first failure raised once every task has ended."""
+    for ok, value in results:
+        if not ok:
+            raise value
+    return [value for _, value in results]

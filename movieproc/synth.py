@@ -20,7 +20,6 @@ from pathlib import Path
 
 import h5py
 import numpy as np
-import yaml
 from scipy import special
 
 from .io import store
@@ -36,7 +35,9 @@ def load_scenario(path) -> dict:
 
     if not path.exists():
         raise InputError(path, "no such file", "a scenario YAML file (see demo_data/scenario.yaml)")
-    return yaml.safe_load(path.read_text())
+    from .config import read_yaml
+
+    return read_yaml(path.read_text())
 
 
 # ----------------------------------------------------------------------------- structure

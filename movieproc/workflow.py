@@ -86,6 +86,8 @@ def run_workflow(config: dict, cores: int = 2, targets=(), forcerun=(), dryrun=F
     updated: list = []
     out = OutputSettings(dryrun=dryrun, quiet=None)
     config_file = write_effective_config(config, workdir)
+    error_file = Path(workdir or Path.cwd()) / config["output_dir"] / "last_error.txt"
+    error_file.unlink(missing_ok=True)
     try:
         with SnakemakeApi(out) as api:
             wf = api.workflow(
@@ -100,5 +102,6 @@ def run_workflow(config: dict, cores: int = 2, targets=(), forcerun=(), dryrun=F
     except MovieprocError:
         raise
     except Exception as exc:  # snakemake raises its own types, after logging the failing job
-        raise WorkflowFailed(f"the workflow stopped: {exc}") from exc
+        cause = error_file.read_text().strip() if error_file.exists() else str(exc)
+        raise WorkflowFailed(f"the workflow stopped: {cause} (details in the log above)") from exc
     return updated

@@ -27,7 +27,7 @@ def wavelength(energy):
         Wavelength, Å.
     """
     energy = np.asarray(energy, dtype=float)
-    if np.any(~(energy > 0)):
+    if np.any(~(energy > 0)) or not np.all(np.isfinite(energy)):
         raise ValueError(f"photon energy must be positive and finite, got {energy}")
     out = HC_KEV_ANGSTROM / energy
     return out.item() if out.ndim == 0 else out

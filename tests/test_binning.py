@@ -132,9 +132,6 @@ def test_population_edges_equal_counts_on_distinct_data(n, count):
     np.testing.assert_array_equal(B.bin_delays(d, edges).count, hist)
 
 
-@pytest.mark.xfail(strict=True, reason="population_edges puts edges on data points when (N - 1) is a multiple "
-                   "of the bin count (np.quantile at integer positions); rounding then moves those points "
-                   "either way, so counts differ by 2 and a bin can be empty (41 shots, 40 bins)")
 @pytest.mark.parametrize("n, count", [(41, 40), (1001, 10), (111, 5)])
 def test_population_edges_nearly_equal_when_not_divisible(n, count):
     # n distinct values in `count` bins: counts floor(n / count) or one more (pigeonhole)

@@ -91,9 +91,6 @@ def test_override_value_with_equals_sign_keeps_the_rest():
     assert parts == ["run", "name"] and value == "a=b"
 
 
-@pytest.mark.xfail(strict=True, reason="overrides are parsed with PyYAML's YAML 1.1 resolver, which reads "
-                   "'1e-1' and '5e-4' as strings; a user's --set binning.width_ps=1e-1 is rejected as "
-                   "'not a number' (config.parse_override)")
 def test_override_exponent_float():
     # YAML 1.2 core schema: [-+]?(\.[0-9]+|[0-9]+(\.[0-9]*)?)([eE][-+]?[0-9]+)? is a float
     # (YAML 1.2 spec, tag resolution of the core schema; from memory); Python: float("1e-1") == 0.1.

@@ -181,9 +181,6 @@ def test_ingest_of_a_bad_run_keeps_the_previous_store(make_run, tmp_path):
     assert leftovers(tmp_path / "out") == []
 
 
-@pytest.mark.xfail(strict=True, reason="parallel.map_ranges returns on the first failing chunk while other "
-                   "chunks still run (dask's threaded scheduler raises without waiting); their writes land in "
-                   "the temporary store after store.atomic_path has removed it, leaving '.shots.zarr.tmp-*'")
 def test_failed_parallel_ingest_leaves_no_temporary(tmp_path, monkeypatch):
     d = run_datasets(n=256, nq=20)
     d["curves"][3, 0] = np.inf  # in the first of 8 chunks

@@ -80,8 +80,6 @@ def test_non_positive_energy_raises(bad):
         xray.wavelength(np.array([12.0, bad]))
 
 
-@pytest.mark.xfail(strict=True, reason="xray.wavelength accepts +inf (its check is 'energy > 0'), returning a "
-                   "wavelength of 0 although its message says energies must be positive and finite")
 def test_infinite_energy_raises():
     with pytest.raises(ValueError, match="positive"):
         xray.wavelength(np.inf)

@@ -48,19 +48,33 @@ def fixed_width_edges(delay, width, start=None, stop=None):
 
 
 def population_edges(delay, count):
-    """Edges of ``count`` bins holding (nearly) equal numbers of shots.
+    """Edges of ``count`` bins holding equal numbers of shots (within one).
 
-    Edges are quantiles of the finite delays; the outer edges are the extreme
-    delays, so every finite delay falls in a bin. Ties can make bins unequal.
+    The sorted finite delays are split into ``count`` runs of as equal length
+    as possible; each inner edge lies half-way between the last delay of one
+    run and the first of the next, so no delay sits on an edge. The outer edges
+    are the extreme delays, so every finite delay falls in a bin. Tied delays
+    at a split make the neighbouring bins unequal; bins that ties leave empty
+    are merged into a neighbour, so fewer than ``count`` bins can result.
     """
     d = np.asarray(delay, float)
-    d = d[np.isfinite(d)]
+    d = np.sort(d[np.isfinite(d)])
     if d.size < count:
         raise DataError(f"{d.size} shots with finite delay cannot fill {count} equal-population bins")
-    edges = np.quantile(d, np.linspace(0.0, 1.0, count + 1))
-    edges = np.unique(edges)
+    split = np.round(np.arange(1, count) * d.size / count).astype(int)
+    inner = 0.5 * (d[split - 1] + d[split])
+    edges = np.unique(np.concatenate([[d[0]], inner, [d[-1]]]))
     if edges.size < 2:
         raise DataError("all delays are equal: equal-population bins need a spread of delays")
+    # Tied delays (e.g. nominal stage positions) can leave bins empty: merge each empty
+    # bin into its neighbour by dropping its inner edge.
+    while edges.size > 2:
+        counts = np.histogram(d, edges)[0]
+        empty = np.flatnonzero(counts == 0)
+        if empty.size == 0:
+            break
+        b = int(empty[0])
+        edges = np.delete(edges, b + 1 if b + 1 < edges.size - 1 else b)
     return edges
 
 

@@ -262,10 +262,11 @@ def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise
     warnings = []
     if n and not np.all(passed[:n]):
         warnings.append("components passing both criteria are not the leading ones "
-                        f"(indices {np.nonzero(passed)[0].tolist()}); inspect the vectors")
+                        f"(components {(np.nonzero(passed)[0] + 1).tolist()}, counting from 1); inspect the vectors")
     both_fail = significant & ~smooth
     if np.any(both_fail):
-        warnings.append(f"components {np.nonzero(both_fail)[0].tolist()} exceed the noise but are not smooth "
-                        "(outliers, artefacts or too coarse sampling?)")
+        warnings.append(f"SVD component(s) {(np.nonzero(both_fail)[0] + 1).tolist()} (counting from 1) exceed the "
+                        "noise but their vectors are not smooth (lag-1 autocorrelation below "
+                        f"{autocorr_min}): not counted; fast changes, outliers or coarse sampling?")
     return ComponentCount(n=n, s=s, s_noise=s_noise, threshold=threshold, autocorr_u=ac_u, autocorr_v=ac_v,
                           significant=significant, smooth=smooth, noise_source=source, warnings=warnings)

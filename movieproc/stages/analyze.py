@@ -162,7 +162,7 @@ def run(binned_path, models_path, out, config: dict):
             coef, coef_err, solute = sf.coef, sf.coef_err, sf.solute
             for w in sf.warnings:
                 warnings.add(w)
-            if fcfg["mode"] == "none" and scfg["enabled"]:
+            if fcfg["mode"] == "none" and any(n != "normalization" for n in names):
                 warnings.add("no solute model in the fit (fit.mode none): solvent coefficients absorb any solute "
                              "signal that resembles the solvent curves")
         else:

@@ -37,6 +37,9 @@ def run(shots_path, selection_path, delays_path, out, config: dict):
                         "check binning and timing in the config")
     log.info("%d bins from %.4g to %.4g ps; %d pump-on shots binned, %d without a delay, %d outside the bins",
              edges.size - 1, edges[0], edges[-1], int(bins.count.sum()), bins.n_nan, bins.n_outside)
+    if binning["mode"] == "population" and edges.size - 1 < binning["count"]:
+        warnings.add(f"{edges.size - 1} equal-population bins instead of binning.count = {binning['count']}: "
+                     "many shots share the same delays (nominal stage positions?)")
     if bins.n_nan:
         warnings.add(f"{bins.n_nan} kept pump-on shots have no corrected delay (no timing-tool edge) and are not binned")
     if bins.n_outside:

@@ -27,7 +27,7 @@ if config["model"]["ground"]:
             options = {"dr": m["dr"], "energy": m["photon_energy_kev"], "anomalous": m["anomalous"],
                        "excluded_volume": m["excluded_volume"], "damping": m["damping_A"],
                        "num_workers": config["compute"]["workers"]}
-            scatter.run(m["ground"], m["trajectory"], m["species"], q, folder(output[0]), options)
+            run_stage(scatter.run, m["ground"], m["trajectory"], m["species"], q, folder(output[0]), options)
 
 
 rule analyze:
@@ -43,4 +43,4 @@ rule analyze:
     run:
         from movieproc.stages import analyze
 
-        analyze.run(folder(input.binned), folder(input.models[0]) if input.models else None, folder(output[0]), config)
+        run_stage(analyze.run, folder(input.binned), folder(input.models[0]) if input.models else None, folder(output[0]), config)

@@ -14,7 +14,7 @@ if config["run"].get("generate"):
             from movieproc import synth
 
             g = params.generate
-            synth.synthesize_run(input.scenario, g["shots"], g["seed"], output.files, folder(output.truth), g["mode"])
+            run_stage(synth.synthesize_run, input.scenario, g["shots"], g["seed"], output.files, folder(output.truth), g["mode"])
 
 
 rule ingest:
@@ -28,4 +28,4 @@ rule ingest:
     run:
         from movieproc.stages import ingest
 
-        ingest.run(list(input), folder(output[0]), config)
+        run_stage(ingest.run, list(input), folder(output[0]), config)

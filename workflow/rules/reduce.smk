@@ -12,7 +12,7 @@ rule select:
     run:
         from movieproc.stages import select
 
-        select.run(folder(input.shots), folder(output[0]), config)
+        run_stage(select.run, folder(input.shots), folder(output[0]), config)
 
 
 rule time:
@@ -25,7 +25,7 @@ rule time:
     run:
         from movieproc.stages import delays
 
-        delays.run(folder(input.shots), folder(output[0]), config)
+        run_stage(delays.run, folder(input.shots), folder(output[0]), config)
 
 
 rule bin:
@@ -40,7 +40,7 @@ rule bin:
     run:
         from movieproc.stages import bins
 
-        bins.run(folder(input.shots), folder(input.selection), folder(input.delays), folder(output[0]), config)
+        run_stage(bins.run, folder(input.shots), folder(input.selection), folder(input.delays), folder(output[0]), config)
 
 
 rule difference:
@@ -56,4 +56,4 @@ rule difference:
     run:
         from movieproc.stages import difference
 
-        difference.run(folder(input.shots), folder(input.selection), folder(input.bins), folder(output[0]), config)
+        run_stage(difference.run, folder(input.shots), folder(input.selection), folder(input.bins), folder(output[0]), config)

@@ -14,7 +14,7 @@ rule assemble:
     run:
         from movieproc.stages import assemble
 
-        assemble.run(folder(input.binned), folder(input.selection), folder(input.shots), folder(output[0]), config, extra=[folder(input.analysis)])
+        run_stage(assemble.run, folder(input.binned), folder(input.selection), folder(input.shots), folder(output[0]), config, extra=[folder(input.analysis)])
 
 
 rule render:
@@ -27,5 +27,5 @@ rule render:
     run:
         from movieproc.stages import render
 
-        render.run(folder(input[0]), f"{OUT}/figures", config)
+        run_stage(render.run, folder(input[0]), f"{OUT}/figures", config)
         Path(f"{OUT}/figures/.done").write_text("figures written\n")
