@@ -9,7 +9,7 @@ from movieproc.detector import corrections, geometry, masks
 def test_polarization_check_values_for_horizontal_polarization():
     # Fully polarized along x (horizontal), 2theta = 30 deg: Pol = 1 - sin^2(2theta) cos^2(phi),
     # = 1 - 0.25 = 0.75 in the polarization plane (phi = 0) and 1 perpendicular to it (phi = 90 deg)
-    # (Als-Nielsen & McMorrow, Elements of Modern X-ray Physics, sec. 1.x; METHODS.md sec. 1).
+    # (Als-Nielsen & McMorrow, Elements of Modern X-ray Physics, ch. 1, from memory; METHODS.md sec. 1).
     tt = np.deg2rad(30.0)
     assert corrections.polarization_factor(tt, 0.0, 1.0) == pytest.approx(0.75, rel=1e-15)
     assert corrections.polarization_factor(tt, np.pi / 2, 1.0) == pytest.approx(1.0, rel=1e-15)
