@@ -104,12 +104,14 @@ def test_photon_energy_from_the_electron_energy_and_from_the_config(tmp_path):
     electron = 14.0 * (1 + 0.0005 * rng.standard_normal(16))
     und = {"kind": "planar", "period_mm": 30.0, "k": 3.5}
     expected = energy.resonance_energy(electron, 30.0, 3.5)
-    det = _detector(undulator=und)
+    # at ~8.7 keV this detector reaches q ~ 2.2 1/Å: keep the grid inside it (q points
+    # without pixels are refused by the stage)
+    det = _detector(undulator=und, q_max=2.1)
     _write_run(tmp_path / "run.h5", _frames(det, 16, expected, rng, photons_per_pixel=100.0), electron=electron)
     integrate.run([tmp_path / "run.h5"], tmp_path / "e.zarr", det, COMPUTE)
     np.testing.assert_allclose(open_shots(tmp_path / "e.zarr").table["photon_energy"], expected, rtol=1e-12)
     # no undulator settings: the configured energy is the fallback for every shot
-    det2 = _detector(photon_energy_kev=8.7)
+    det2 = _detector(photon_energy_kev=8.7, q_max=2.1)
     integrate.run([tmp_path / "run.h5"], tmp_path / "c.zarr", det2, COMPUTE)
     np.testing.assert_array_equal(open_shots(tmp_path / "c.zarr").table["photon_energy"], np.full(16, 8.7))
 
@@ -190,3 +192,17 @@ def test_curves_runs_and_a_wrong_configured_shape_are_errors(tmp_path):
         integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(shape_px=[90, 96]), COMPUTE)
     with pytest.raises(ConfigError, match="detector.q_min"):
         integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(q_min=20.0, q_max=30.0), COMPUTE)
+
+
+def test_q_points_without_pixels_are_refused(tmp_path):
+    # At 8.7 keV the detector reaches q ~ 2.2 1/Å; a grid to 4 1/Å would leave curves
+    # NaN at the outer points: the stage refuses it, naming the keys and the covered range.
+    rng = np.random.default_rng(5)
+    det = _detector(photon_energy_kev=8.7, q_max=4.0)
+    photon = np.full(8, 8.7)
+    _write_run(tmp_path / "run.h5", _frames(det, 8, photon, rng, photons_per_pixel=100.0), photon)
+    out = tmp_path / "shots.zarr"
+    with pytest.raises(ConfigError, match="detector.q_min/q_max") as err:
+        integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+    assert "detector.q_max=" in str(err.value)
+    assert _nothing_written(out)

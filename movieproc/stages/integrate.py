@@ -223,8 +223,16 @@ def run(files, out, detector: dict, compute: dict) -> dict:
     log.info("pixels: %d used of %d; left out: %s", used, shape[0] * shape[1],
              ", ".join(f"{v} {k}" for k, v in reasons.items() if v) or "none")
     count = energy.rescale_curves(binning.moments[None, 0, 0], grid, q, np.ones(1))[0]
-    if np.any(~(count > 0)):
-        warnings.add(f"{int(np.sum(~(count > 0)))} q point(s) get no valid pixels; their curves are NaN")
+    empty = ~(count > 0)
+    if np.any(empty):
+        # Curves must be finite everywhere downstream: name the q points and the range that works.
+        covered = q[~empty]
+        hint = (f"a q grid inside the covered range, e.g. detector.q_min={covered.min():.4g} and "
+                f"detector.q_max={covered.max():.4g}" if covered.size else "a q range the detector reaches")
+        raise ConfigError("detector.q_min/q_max",
+                          f"{int(empty.sum())} q point(s) with no unmasked pixels at {e_ref:.4g} keV "
+                          f"(q = {', '.join(f'{v:.3g}' for v in q[empty][:6])}{' ...' if empty.sum() > 6 else ''} 1/Å)",
+                          hint)
 
     chunk = int(compute["chunk_shots"])
     frame_bytes = shape[0] * shape[1] * info.data_dtype.itemsize
