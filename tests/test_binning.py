@@ -248,3 +248,19 @@ def test_accumulate_errors():
         B.accumulate([0], np.ones((2, 2)), 3)  # lengths differ
     with pytest.raises(ValueError):
         B.accumulate([0, 1], np.ones(2), 3)  # not (n, m)
+
+
+def test_accumulate_weighted_matches_numpy():
+    # reference: weighted sums per bin with np.add.at, written independently here
+    rng = np.random.default_rng(8)
+    idx = rng.integers(-1, 6, 500)
+    w = rng.poisson(1.0, 500)
+    x = rng.standard_normal((500, 7)).astype(np.float32)
+    wsum, sums = B.accumulate_weighted(idx, w, x, 6)
+    ref_w = np.zeros(6)
+    ref_s = np.zeros((6, 7))
+    ok = idx >= 0
+    np.add.at(ref_w, idx[ok], w[ok])
+    np.add.at(ref_s, idx[ok], w[ok, None] * x[ok].astype(np.float64))
+    np.testing.assert_allclose(wsum, ref_w)
+    np.testing.assert_allclose(sums, ref_s, rtol=1e-12, atol=1e-12)

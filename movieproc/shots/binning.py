@@ -255,3 +255,45 @@ def accumulate(index, values, nbins, into=None) -> BinSums:
     out = into if into is not None else BinSums.zeros(nbins, values.shape[1])
     _accumulate(index, values, out.count, out.sum, out.sumsq)
     return out
+
+
+@numba.njit(nogil=True, cache=True)
+def _accumulate_weighted(index, weights, values, wsum, sums):
+    n, m = values.shape
+    for i in range(n):
+        b = index[i]
+        w = weights[i]
+        if b < 0 or w == 0:
+            continue
+        wsum[b] += w
+        srow = sums[b]
+        for j in range(m):
+            srow[j] += w * np.float64(values[i, j])
+
+
+def accumulate_weighted(index, weights, values, nbins, into=None):
+    """Add weighted per-shot values into per-bin sums (for resampling with weights).
+
+    Parameters
+    ----------
+    index : array_like (n,) int
+        Bin of each shot; negative entries are skipped.
+    weights : array_like (n,)
+        Weight of each shot (e.g. Poisson(1) counts of a bootstrap replicate).
+    values : array_like (n, m)
+    nbins : int
+    into : (ndarray (nbins,), ndarray (nbins, m)), optional
+        Sum of weights and weighted sums to add to (modified in place).
+
+    Returns
+    -------
+    wsum : ndarray (nbins,) float64
+    sums : ndarray (nbins, m) float64
+    """
+    values = np.ascontiguousarray(values)
+    index = np.ascontiguousarray(index, dtype=np.int64)
+    weights = np.ascontiguousarray(weights, dtype=np.float64)
+    if into is None:
+        into = (np.zeros(nbins), np.zeros((nbins, values.shape[1])))
+    _accumulate_weighted(index, weights, values, into[0], into[1])
+    return into

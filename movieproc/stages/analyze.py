@@ -145,7 +145,9 @@ def run(binned_path, models_path, out, config: dict):
                         f"{fcfg['min_delays']} (check binning.min_shots and fit.delay_range_ps)")
     if fcfg["mode"] != "none":
         spread = (delay[use], store.read(b, "delay_spread")[use])
-        fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread)
+        boot = store.read(b, "diff_boot").astype(float) * factor if "diff_boot" in b else None
+        fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread,
+                              None if boot is None else boot[:, use])
     if fit_res is not None:
         arrays["model"] = _rows(fit_res.model, use)
         arrays["residual"] = _rows(fit_res.residual, use)
@@ -219,7 +221,7 @@ def _rows(values, use):
     return full
 
 
-def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None):
+def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, boot=None):
     if fcfg["mode"] == "trajectory":
         if models is None or "traj_dS" not in models:
             raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")
@@ -251,6 +253,25 @@ def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=N
     text = ", ".join(f"{k} = {v:.4g} ± {res.stderr.get(k, np.nan):.2g}" for k, v in res.params.items())
     text += "".join(f", {k} = {v:.4g} ± {res.amplitudes_err.get(k, np.nan):.2g}" for k, v in res.amplitudes.items())
     log.info("%s fit: %s; reduced chi2 %.3f", fcfg["mode"], text, res.red_chi2)
+    names_all = list(model.param_names) + list(res.amplitudes)
+    res.bootstrap = {}
+    if boot is not None:
+        # refit every bootstrap replicate over shots; its spread is the parameters' error
+        samples = []
+        for rep in boot:
+            try:
+                r = varpro.fit(model, rep, err, delay, res.params, linear_errors=False)
+            except (DataError, ConfigError):
+                continue
+            samples.append([r.params[k] for k in model.param_names] + list(r.amplitudes.values()))
+        if len(samples) >= 2:
+            sd = np.std(np.array(samples), axis=0, ddof=1)
+            res.bootstrap = {n: {"error": float(v), "replicates": len(samples), "over": "shots"}
+                             for n, v in zip(names_all, sd)}
+            log.info("bootstrap over shots (%d replicates): %s", len(samples),
+                     ", ".join(f"{n} ± {v:.2g}" for n, v in zip(names_all, sd)))
+        if len(samples) < len(boot):
+            warnings.add(f"{len(boot) - len(samples)} of {len(boot)} bootstrap refits failed")
     if fcfg["bootstrap"]:
         def refit(d, e, t):
             order = np.argsort(t, kind="stable")
@@ -258,9 +279,10 @@ def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=N
             return [r.params[k] for k in model.param_names] + list(r.amplitudes.values())
 
         bs = varpro.bootstrap(refit, (diff, err, delay), fcfg["bootstrap"], np.random.default_rng(fcfg["seed"]))
-        res.bootstrap = {name: float(sd) for name, sd in
-                         zip(list(model.param_names) + list(res.amplitudes), bs.std)}
-        log.info("bootstrap over delays (%d resamples, %d failed): std %s", fcfg["bootstrap"], bs.n_failed, res.bootstrap)
+        for n, v in zip(names_all, bs.std):
+            res.bootstrap.setdefault(n, {"error": float(v), "replicates": int(len(bs.samples)), "over": "delays"})
+        log.info("bootstrap over delays (%d resamples, %d failed): std %s", fcfg["bootstrap"], bs.n_failed,
+                 np.array2string(bs.std, precision=3))
     return res
 
 
@@ -317,9 +339,9 @@ def _write(out, q, delay, arrays, result, config, warnings):
         for k, v in fit.amplitudes.items():
             attrs["fit_parameters"][k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
                                           "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
-        if getattr(fit, "bootstrap", None):
-            for k, sd in fit.bootstrap.items():
-                attrs["fit_parameters"][k]["bootstrap_error"] = sd
+        for k, info in (getattr(fit, "bootstrap", None) or {}).items():
+            attrs["fit_parameters"][k]["bootstrap_error"] = info["error"]
+            attrs["fit_parameters"][k]["bootstrap"] = f"{info['replicates']} replicates over {info['over']}"
         attrs.update({"fit_reduced_chi2": float(fit.red_chi2), "fit_converged": bool(fit.converged),
                       "fit_at_bound": list(fit.at_bound), "fit_species": list(fit.species_names),
                       "fit_correlation_names": list(fit.corr_names)})

@@ -13,7 +13,7 @@ import numpy as np
 
 from ..io import shotstore, store
 from ..parallel import map_ranges
-from ..shots.binning import BinSums, accumulate
+from ..shots.binning import BinSums, accumulate, accumulate_weighted
 from ..signals.differences import bin_errors, nearest_references, shared_reference_factor
 from ..signals.normalize import normalize
 from .common import Warnings, now
@@ -45,6 +45,12 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
     mode, qr = dcfg["normalization"], dcfg["norm_q_range"]
     chunk = compute["chunk_shots"]
     ranges = [(a, min(a + chunk, on_idx.size)) for a in range(0, on_idx.size, chunk)]
+    n_boot = dcfg["bootstrap"]
+    # Poisson bootstrap over shots: replicate r weights every shot (pump-on and reference
+    # alike) by a Poisson(1) count, drawn once for the whole run so a reference shared by
+    # shots of different chunks keeps one weight per replicate.
+    boot_w = (np.random.default_rng(dcfg["seed"]).poisson(1.0, (n_boot, shots.n_shots)).astype(np.uint8)
+              if n_boot else None)
 
     def work(a, b):
         idx, r = on_idx[a:b], refs[a:b]
@@ -58,13 +64,25 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
         c_on = norm[pos_on]
         c_ref = norm[pos_ref].mean(axis=1, dtype=np.float64)
         d = c_on - c_ref
+        boot = []
+        for rep in range(n_boot):
+            w_ref = boot_w[rep][r].astype(np.float64)            # (n, k)
+            w_tot = w_ref.sum(axis=1)
+            w_ref = np.where(w_tot[:, None] > 0, w_ref / np.maximum(w_tot, 1)[:, None], 1.0 / k)
+            ref_rep = np.einsum("nk,nkq->nq", w_ref, norm[pos_ref], dtype=np.float64)
+            boot.append(accumulate_weighted(on_bin[a:b], boot_w[rep][idx], c_on - ref_rep, nb))
         return (accumulate(on_bin[a:b], d, nb), accumulate(on_bin[a:b], c_on, nb),
-                accumulate(on_bin[a:b], c_ref, nb))
+                accumulate(on_bin[a:b], c_ref, nb), boot)
 
     parts = map_ranges(work, ranges, compute["workers"], compute["scheduler"], compute["progress"], "difference")
     total = [BinSums.zeros(nb, nq) for _ in range(3)]
+    boot_w_sum = np.zeros((n_boot, nb))
+    boot_sum = np.zeros((n_boot, nb, nq))
     for p in parts:
-        total = [t + x for t, x in zip(total, p)]
+        total = [t + x for t, x in zip(total, p[:3])]
+        for rep, (ws, sm) in enumerate(p[3]):
+            boot_w_sum[rep] += ws
+            boot_sum[rep] += sm
     dsum, onsum, refsum = total
     count = dsum.count
     diff = dsum.mean()
@@ -93,4 +111,10 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
         store.write_array(g, "diff_err", err.astype(np.float32), ["delay", "q"], units=units,
                           attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
         store.write_array(g, "on_mean", onsum.mean().astype(np.float32), ["delay", "q"], units=units)
+        if n_boot:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                boot_mean = boot_sum / boot_w_sum[:, :, None]
+            store.write_array(g, "diff_boot", boot_mean.astype(np.float32), ["replicate", "delay", "q"], units=units,
+                              attrs={"meaning": "diff of Poisson-bootstrap replicates over shots (pump-on and "
+                                                "reference shots reweighted together)", "seed": dcfg["seed"]})
         store.write_array(g, "off_mean", refsum.mean().astype(np.float32), ["delay", "q"], units=units)
