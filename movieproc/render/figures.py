@@ -266,3 +266,87 @@ def realspace(r, delay, values, delays=None, title="", units=""):
     ax.legend(fontsize=8, ncols=2)
     ax.set_title(title or "real-space difference (damped sine transform)")
     return fig
+
+
+def animation(path, q, delay, data, err, model, positions, element, label=None, q_weighted=True, units="",
+              fps=4, dpi=90, title=""):
+    """Animated GIF of the movie: the curve (with its fit) and the best structure at each delay.
+
+    Parameters
+    ----------
+    path : path
+        GIF file to write (atomically).
+    q : ndarray (nq,), 1/Å
+    delay : ndarray (nd,), ps
+    data, err : ndarray (nd, nq)
+        Difference curves and errors (rows with NaN are skipped).
+    model : ndarray (nd, nq) or None
+    positions : ndarray (nd, natom, 3) or None
+        Best structure per delay, Å (NaN where none is reported).
+    element : sequence of str (natom,) or None
+    label : dict of name -> ndarray (nd,), optional
+        Geometric parameters printed under the structure.
+    """
+    from matplotlib.animation import FuncAnimation, PillowWriter
+
+    from ..io.store import atomic_path
+
+    rows = np.flatnonzero(np.isfinite(data).all(axis=1))
+    w = q if q_weighted else np.ones_like(q)
+    lim = 1.15 * np.nanmax(np.abs((data[rows] + err[rows]) * w))
+    has_structure = positions is not None and element is not None
+    fig, axes = plt.subplots(1, 2 if has_structure else 1, figsize=(9 if has_structure else 6, 4),
+                             layout="constrained", gridspec_kw={"width_ratios": [3, 2]} if has_structure else None)
+    axes = np.atleast_1d(axes)
+    ax = axes[0]
+    band = [ax.fill_between(q, 0 * q, 0 * q, color="C0", alpha=0.3, lw=0)]
+    (line,) = ax.plot(q, 0 * q, color="C0", lw=1, label="data")
+    (fit,) = ax.plot(q, 0 * q, color="C3", lw=1, label="fit") if model is not None else (None,)
+    ax.axhline(0, color="0.7", lw=0.5)
+    ax.set_ylim(-lim, lim)
+    ax.set_xlabel("q (1/Å)")
+    ax.set_ylabel(("q·ΔS" if q_weighted else "ΔS") + (f" ({units})" if units else ""))
+    ax.legend(loc="upper right", fontsize=8)
+    text = ax.text(0.02, 0.95, "", transform=ax.transAxes, va="top")
+    if has_structure:
+        sax = axes[1]
+        kinds = list(dict.fromkeys(element))
+        colors = {e: f"C{i}" for i, e in enumerate(kinds)}
+        finite = positions[np.isfinite(positions).all(axis=(1, 2))]
+        span = np.nanmax(np.abs(finite[..., [0, 2]])) * 1.15 if finite.size else 5.0
+        sax.set_xlim(-span, span)
+        sax.set_ylim(-span, span)
+        sax.set_aspect("equal")
+        sax.set_xlabel("x (Å)")
+        sax.set_ylabel("z (Å)")
+        dots = sax.scatter(np.zeros(len(element)), np.zeros(len(element)),
+                           c=[colors[e] for e in element], s=[120 if e == kinds[0] else 50 for e in element])
+        for e in kinds:
+            sax.scatter([], [], c=colors[e], label=e)
+        sax.legend(fontsize=8, loc="upper right")
+        stext = sax.text(0.02, 0.02, "", transform=sax.transAxes, fontsize=9)
+
+    def draw(k):
+        i = rows[k]
+        band[0].remove()
+        band[0] = ax.fill_between(q, (data[i] - err[i]) * w, (data[i] + err[i]) * w, color="C0", alpha=0.3, lw=0)
+        line.set_ydata(data[i] * w)
+        if fit is not None:
+            fit.set_ydata(model[i] * w)
+        text.set_text(f"{delay[i]:.3g} ps")
+        if has_structure:
+            p = positions[i]
+            ok = np.isfinite(p).all()
+            dots.set_offsets(p[:, [0, 2]] if ok else np.full((len(element), 2), np.nan))
+            parts = [f"{n} = {v[i]:.3f}" for n, v in (label or {}).items() if np.isfinite(v[i])]
+            stext.set_text(", ".join(parts) if ok else "no structure determined")
+        return ()
+
+    fig.suptitle(title or "movie")
+    anim = FuncAnimation(fig, draw, frames=len(rows), blit=False)
+    with atomic_path(path) as tmp:
+        anim.save(str(tmp) + ".gif", writer=PillowWriter(fps=fps), dpi=dpi)
+        import os
+
+        os.replace(str(tmp) + ".gif", tmp)
+    plt.close(fig)

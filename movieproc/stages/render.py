@@ -74,8 +74,15 @@ def run(movie_path, out_dir, config: dict):
         lo = {g: store.read(m, f"geometry_{g}_lower") for g in geo}
         hi = {g: store.read(m, f"geometry_{g}_upper") for g in geo}
         if any(np.isfinite(v).any() for v in vals.values()):
-            units = {g: m[f"geometry_{g}"].attrs.get("units", "") for g in geo}
-            save(figures.structure_parameters(delay, vals, lo, hi, units, title=f"{name}: structure per delay"),
+            geo_units = {g: m[f"geometry_{g}"].attrs.get("units", "") for g in geo}
+            save(figures.structure_parameters(delay, vals, lo, hi, geo_units, title=f"{name}: structure per delay"),
                  "structure.png")
+    if rcfg["animation"]:
+        pos = store.read(m, "positions") if "positions" in m else None
+        els = [str(e) for e in m["element"][...]] if "element" in m else None
+        labels = {g: store.read(m, f"geometry_{g}") for g in geo}
+        figures.animation(out / "movie.gif", q, delay, diff, err, model, pos, els, labels, rcfg["q_weighted"], units,
+                          title=f"{name}: difference and structure per delay")
+        written.append(out / "movie.gif")
     log.info("figures: %s", ", ".join(str(p) for p in written))
     return written
