@@ -223,7 +223,12 @@ def run(files, out, detector: dict, compute: dict) -> dict:
     log.info("pixels: %d used of %d; left out: %s", used, shape[0] * shape[1],
              ", ".join(f"{v} {k}" for k, v in reasons.items() if v) or "none")
     count = energy.rescale_curves(binning.moments[None, 0, 0], grid, q, np.ones(1))[0]
-    empty = ~(count > 0)
+    # A q point whose curve would be NaN: some grid point of its interpolation stencil has
+    # no valid pixel, for the lowest or the highest shot energy.
+    covered = np.where(binning.moments[0, 0] > 0, 1.0, np.nan)[None]
+    probe = [covered[0]] if not aware else [energy.rescale_curves(covered, grid, q, np.array([s]))[0]
+                                            for s in (scale.min(), scale.max())]
+    empty = ~np.all(np.isfinite(np.stack(probe)), axis=0)
     if np.any(empty):
         # Curves must be finite everywhere downstream: name the q points and the range that works.
         covered = q[~empty]
