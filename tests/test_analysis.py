@@ -186,3 +186,20 @@ def test_bootstrap_over_shots(reduced):
     for name in ("t0", "sigma", "lifetime", "alpha"):
         assert "12 replicates over shots" in p[name]["bootstrap"]
         assert 0.3 < p[name]["bootstrap_error"] / p[name]["error"] < 3.5, (name, p[name])
+
+
+def test_network_kinetics_and_its_validation(reduced):
+    # A general network equivalent to the scenario (one excited species S0 decaying to the
+    # ground state S1) finds the same 30 ps lifetime as the sequential scheme.
+    a = _analyze(reduced, "network.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
+                 "fit.network=[[0, 1]]", "fit.lifetimes_ps=[20.0]", "fit.delay_range_ps=[1.5, 200]")
+    p = a.attrs["fit_parameters"]
+    assert abs(p["tau_1"]["value"] - 30.0) <= 3 * p["tau_1"]["error"]
+    # transitions that do not match the lifetimes, or a self-transition: refused with the key named
+    with pytest.raises(ConfigError, match="fit.network"):
+        _analyze(reduced, "bad.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
+                 "fit.network=[[0, 1], [1, 2]]", "fit.lifetimes_ps=[20.0]")
+    with pytest.raises(ConfigError, match="fit.network"):
+        _analyze(reduced, "bad.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
+                 "fit.network=[[1, 1]]", "fit.lifetimes_ps=[20.0]")
+    assert not (reduced / "bad.zarr").exists()

@@ -120,10 +120,12 @@ class SpeciesModel:
     ----------
     n_lifetimes : int
         Number of decay steps m (>= 1). The scheme has m + 1 species.
-    scheme : {"sequential", "parallel"}
+    scheme : {"sequential", "parallel", "network"}
         ``sequential``: A1 -> A2 -> ... -> Am -> P, starting in A1.
         ``parallel``: A1..Am decay independently into P, starting with populations
         ``initial`` (default 1/m each).
+        ``network``: a general first-order network of species S0, S1, ... given by
+        ``transitions``, starting in S0 (or ``initial``).
     curves : array_like, shape (n_used, n_q), optional
         Given species difference curves (S_k - S_ground) for the species in
         ``species``; the model is alpha * sum_k c_k B_k with one linear scale alpha
@@ -145,6 +147,10 @@ class SpeciesModel:
         Bin delays and the standard deviation of the shots' delays in each bin
         (ps); added in quadrature to ``sigma`` per bin, so ``sigma`` is the
         instrument response itself rather than the response widened by binning.
+    transitions : array_like of int, shape (m, 2), optional
+        ``network`` scheme: [from, to] species indices of each transition, whose
+        rate is 1 / tau_i (i in the order given). The rate matrix is checked to
+        be a valid first-order network.
 
     Notes
     -----
@@ -169,20 +175,39 @@ class SpeciesModel:
     """
 
     def __init__(self, n_lifetimes, scheme="sequential", curves=None, species=None, solvent=None,
-                 solvent_names=None, oscillation=False, initial=None, delay_spread=None):
+                 solvent_names=None, oscillation=False, initial=None, delay_spread=None, transitions=None):
         self.width = _BinWidth(*(delay_spread or (None, None)))
         m = int(n_lifetimes)
         if m < 1:
             raise ConfigError("fit.kinetics.n_lifetimes", str(n_lifetimes), "an integer >= 1")
-        if scheme not in ("sequential", "parallel"):
-            raise ConfigError("fit.kinetics.scheme", repr(scheme), "'sequential' or 'parallel'")
+        if scheme not in ("sequential", "parallel", "network"):
+            raise ConfigError("fit.kinetics", repr(scheme), "'sequential', 'parallel' or 'network'")
         self.n_lifetimes, self.scheme = m, scheme
-        letters = [f"A{i + 1}" for i in range(m)] + ["P"]
+        n_species = m + 1
+        self.transitions = None
+        if scheme == "network":
+            tr = np.asarray(transitions if transitions is not None else [], dtype=float)
+            if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
+                raise ConfigError("fit.network", f"{transitions!r}",
+                                  f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
+            tr = tr.astype(int)
+            if np.any(tr[:, 0] == tr[:, 1]):
+                raise ConfigError("fit.network", f"{transitions!r}", "transitions between different species")
+            self.transitions = tr
+            n_species = int(tr.max()) + 1
+        letters = ([f"A{i + 1}" for i in range(m)] + ["P"] if scheme != "network"
+                   else [f"S{i}" for i in range(n_species)])
         self.species_names = letters
-        self.species = list(range(m + 1)) if species is None else [int(s) for s in species]
-        if not self.species or any(s < 0 or s > m for s in self.species) or len(set(self.species)) != len(self.species):
-            raise ConfigError("fit.kinetics.species", f"{species!r}", f"distinct indices in 0..{m}")
+        self.species = list(range(n_species)) if species is None else [int(s) for s in species]
+        if (not self.species or any(s < 0 or s >= n_species for s in self.species)
+                or len(set(self.species)) != len(self.species)):
+            raise ConfigError("fit.kinetics.species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
         self.initial = None
+        if scheme == "network":
+            init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
+            if init.shape != (n_species,) or not np.all(np.isfinite(init)):
+                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{n_species} finite initial populations")
+            self.initial = init
         if scheme == "parallel":
             init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
             if init.shape != (m,) or not np.all(np.isfinite(init)):
@@ -223,6 +248,14 @@ class SpeciesModel:
         k = np.array([1.0 / params[f"tau_{i + 1}"] for i in range(self.n_lifetimes)])
         if self.scheme == "sequential":
             return kinetics.sequential_rate_matrix(k)
+        if self.scheme == "network":
+            n = len(self.species_names)
+            K = np.zeros((n, n))
+            for (i, j), rate in zip(self.transitions, k):
+                K[j, i] += rate
+                K[i, i] -= rate
+            kinetics.validate_rate_matrix(K)
+            return K
         return kinetics.parallel_rate_matrix(k)
 
     def populations(self, params, delay):
@@ -261,8 +294,9 @@ class SpeciesModel:
         if self.oscillation:
             per, damp = params["osc_period"], params["osc_damping"]
             omega = 2 * np.pi / per
-            osc = [irf.damped_oscillation_gauss(delay, damp, omega, params["t0"], params["sigma"], phase=ph)
-                   for ph in (0.0, -np.pi / 2)]
+            osc = [self.width.evaluate(
+                lambda t, w, ph=ph: irf.damped_oscillation_gauss(t, damp, omega, params["t0"], w, phase=ph),
+                delay, params["sigma"]) for ph in (0.0, -np.pi / 2)]
             profiles = np.column_stack([profiles] + osc)
         return LinearDesign(profiles=profiles, maps=maps, curves=self.solvent, populations=pop)
 

@@ -239,10 +239,28 @@ def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=N
                                   "species structures in model.species, or fit.species_curves: free")
             given = store.read(models, "species_dS")
         n = len(fcfg["lifetimes_ps"])
-        model = SpeciesModel(n, fcfg["kinetics"], curves=given, solvent=basis, solvent_names=names,
-                                delay_spread=spread)
+        scheme = fcfg["kinetics"]
+        transitions = fcfg["network"] if scheme == "network" else None
+        if scheme == "network":
+            if not transitions or len(transitions) != n:
+                raise ConfigError("fit.network", f"{transitions!r}",
+                                  f"one [from, to] transition per lifetime in fit.lifetimes_ps ({n})")
+            sinks = sorted(set(range(max(max(t) for t in transitions) + 1)) - {t[0] for t in transitions})
+            transient = [i for i in range(max(max(t) for t in transitions) + 1) if i not in sinks]
+            species = fcfg["signal_species"] or (None if fcfg["product_signal"] else transient)
+        else:
+            species = fcfg["signal_species"] or (None if fcfg["product_signal"] else list(range(n)))
+        n_all = (max(max(t) for t in transitions) + 1) if scheme == "network" else n + 1
+        if given is not None and given.shape[0] != len(species or range(n_all)):
+            raise ConfigError("model.species", f"{given.shape[0]} species structures",
+                              f"{len(species or range(n_all))}, one per species with a solute signal "
+                              f"(fit.signal_species, or the kinetic scheme's non-final species)")
+        model = SpeciesModel(n, scheme, curves=given, species=species, solvent=basis, solvent_names=names,
+                             delay_spread=spread, transitions=transitions, oscillation=fcfg["oscillation"])
         p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"]}
-        p0.update({name: v for name, v in zip(model.param_names[2:], fcfg["lifetimes_ps"])})
+        p0.update({f"tau_{i + 1}": v for i, v in enumerate(fcfg["lifetimes_ps"])})
+        if fcfg["oscillation"]:
+            p0.update({"osc_period": fcfg["oscillation_period_ps"], "osc_damping": fcfg["oscillation_damping_ps"]})
     res = varpro.fit(model, diff, err, delay, p0)
     for w in res.warnings:
         warnings.add(f"fit: {w}")
