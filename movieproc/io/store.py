@@ -114,12 +114,7 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
     )
     if data.size:
         arr[...] = data
-    meta = dict(attrs or {})
-    if units is not None:
-        meta["units"] = units
-    if meta:
-        arr.attrs.update(_jsonable(meta))
-    return arr
+    return _label(arr, units, attrs)
 
 
 def create_array(group, name, shape, dims, dtype, chunks, units=None, attrs=None):
@@ -128,6 +123,11 @@ def create_array(group, name, shape, dims, dtype, chunks, units=None, attrs=None
         name, shape=shape, dtype=dtype, chunks=chunks, dimension_names=list(dims),
         fill_value=np.nan if np.dtype(dtype).kind == "f" else 0, overwrite=True,
     )
+    return _label(arr, units, attrs)
+
+
+def _label(arr, units, attrs):
+    """Store units and further attributes on an array; return it."""
     meta = dict(attrs or {})
     if units is not None:
         meta["units"] = units

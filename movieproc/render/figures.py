@@ -19,6 +19,21 @@ def _robust_limit(values, pct=99.0):
     return lim if lim > 0 else 1.0
 
 
+def _map(q, delay, values, lim, size):
+    """A (delay, q) map, one row per bin, diverging colours centred on zero within +-lim."""
+    fig, ax = plt.subplots(figsize=size, layout="constrained")
+    rows = np.arange(len(delay) + 1) - 0.5
+    qe = np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
+    mesh = ax.pcolormesh(qe, rows, values, cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -lim, lim), shading="flat")
+    step = max(1, len(delay) // 18)
+    ticks = np.arange(0, len(delay), step)
+    ax.set_yticks(ticks, [f"{delay[i]:.3g}" for i in ticks])
+    ax.set_ylim(rows[-1], rows[0])
+    ax.set_xlabel("q (1/Å)")
+    ax.set_ylabel("delay (ps), one row per bin")
+    return fig, ax, mesh
+
+
 def difference_map(q, delay, diff, edges=None, q_weighted=True, low_count=None, title="", units=""):
     """Difference map: q across, delay bins down, diverging colours centred on zero.
 
@@ -41,16 +56,7 @@ def difference_map(q, delay, diff, edges=None, q_weighted=True, low_count=None, 
     """
     data = np.asarray(diff, float) * (q[None, :] if q_weighted else 1.0)
     lim = _robust_limit(data)
-    fig, ax = plt.subplots(figsize=(7.5, 6.0), layout="constrained")
-    rows = np.arange(len(delay) + 1) - 0.5
-    qe = np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
-    mesh = ax.pcolormesh(qe, rows, data, cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -lim, lim), shading="flat")
-    step = max(1, len(delay) // 18)
-    ticks = np.arange(0, len(delay), step)
-    ax.set_yticks(ticks, [f"{delay[i]:.3g}" for i in ticks])
-    ax.set_ylim(rows[-1], rows[0])
-    ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel("delay (ps), one row per bin")
+    fig, ax, mesh = _map(q, delay, data, lim, (7.5, 6.0))
     if low_count is not None:
         for i in np.flatnonzero(low_count):
             ax.axhspan(i - 0.5, i + 0.5, facecolor="none", edgecolor="0.4", hatch="///", lw=0)
@@ -199,17 +205,7 @@ def structure_parameters(delay, values, lower, upper, units=None, title=""):
 
 def residual_map(q, delay, residual, err, title=""):
     """Normalized residuals (data - model) / error as a map; should look like noise."""
-    z = residual / err
-    fig, ax = plt.subplots(figsize=(7.5, 5.5), layout="constrained")
-    rows = np.arange(len(delay) + 1) - 0.5
-    qe = np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
-    mesh = ax.pcolormesh(qe, rows, z, cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -4, 4), shading="flat")
-    step = max(1, len(delay) // 18)
-    ticks = np.arange(0, len(delay), step)
-    ax.set_yticks(ticks, [f"{delay[i]:.3g}" for i in ticks])
-    ax.set_ylim(rows[-1], rows[0])
-    ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel("delay (ps), one row per bin")
+    fig, ax, mesh = _map(q, delay, residual / err, 4.0, (7.5, 5.5))
     fig.colorbar(mesh, ax=ax).set_label("(data − model) / error")
     ax.set_title(title or "fit residuals")
     return fig
