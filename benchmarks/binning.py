@@ -24,17 +24,9 @@ import time
 import numpy as np
 
 from movieproc.shots.binning import BinSums, accumulate
+from clock import best
 
 TARGET = 5.0
-
-
-def best(fn, repeats):
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
 
 
 def streamed(index, curves, nbins, chunk):

@@ -26,6 +26,7 @@ from scipy.spatial.distance import pdist
 
 from movieproc.scattering import debye as D
 from movieproc.scattering import model
+from clock import best
 
 TARGET = 4.0
 
@@ -37,15 +38,6 @@ def cluster(n_atoms, rng):
     pts *= (radius * rng.uniform(size=n_atoms) ** (1 / 3) / np.linalg.norm(pts, axis=1))[:, None]
     elements = list(rng.choice(["Ir", "Cl", "C", "O", "H"], n_atoms, p=[0.02, 0.04, 0.3, 0.3, 0.34]))
     return elements, pts
-
-
-def best(fn, repeats):
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
 
 
 def main(argv=None):

@@ -23,15 +23,7 @@ import numpy as np
 
 from movieproc.detector import anisotropy, corrections, geometry, integration
 from movieproc.parallel import chunk_ranges, map_ranges
-
-
-def best_of(fn, repeats):
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
+from clock import best as best_of
 
 
 @numba.njit(nogil=True)
