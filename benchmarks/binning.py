@@ -19,7 +19,6 @@ ratio. Minimum over repeats for both timings (the machine's cores are shared).
 from __future__ import annotations
 
 import argparse
-import time
 
 import numpy as np
 

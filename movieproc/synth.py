@@ -20,7 +20,6 @@ from pathlib import Path
 
 import h5py
 import numpy as np
-from scipy import special
 
 from .io import store
 from .signals.normalize import window_mask
