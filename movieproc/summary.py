@@ -44,7 +44,8 @@ def summarize_run(files, timing: dict | None = None) -> str:
             lines.append(f"timing jitter (spread of the corrections): {np.std(corr):.1f} fs rms, "
                          f"5-95 % range {np.percentile(corr, 5):.0f} to {np.percentile(corr, 95):.0f} fs")
         else:
-            lines.append(f"timing edge spread: {np.std(edge[ok]):.1f} px rms")
+            lines.append(f"timing edge spread: {np.std(edge[ok]):.1f} px rms "
+                         "(give --config with the timing calibration to see the jitter in fs)")
     pe = t["pulse_energy"]
     lines.append(f"pulse energy: median {np.median(pe):.4g}, relative rms {np.std(pe) / np.mean(pe):.2f}, "
                  f"{int(np.sum(pe < 0.3 * np.median(pe)))} shots below 30 % of the median")
@@ -87,7 +88,11 @@ def summarize_movie(path) -> str:
     for key in ("fit_parameters",):
         if key in a:
             lines.append("fitted parameters: " + ", ".join(
-                f"{k} = {v['value']:.4g} ± {v['error']:.2g}" for k, v in a[key].items()))
+                f"{k} = {v['value']:.4g} ± {v['error']:.2g}"
+                + (f" (bootstrap ± {v['bootstrap_error']:.2g})" if "bootstrap_error" in v else "")
+                for k, v in a[key].items()))
+            if not a.get("fit_converged", True):
+                lines.append("FIT DID NOT CONVERGE: the parameters above are not reliable")
     warns = a.get("warnings", [])
     lines.append(f"warnings: {len(warns)}")
     lines += [f"  {w}" for w in warns]
