@@ -206,3 +206,220 @@ def test_q_points_without_pixels_are_refused(tmp_path):
         integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
     assert "detector.q_max=" in str(err.value)
     assert _nothing_written(out)
+
+
+# --- azimuthal sectors and per-shot variance -------------------------------------------
+
+
+def _p2(x):
+    # second Legendre polynomial, from memory: P2(x) = (3 x^2 - 1) / 2
+    return 1.5 * x * x - 0.5
+
+
+def test_sectors_of_an_isotropic_pattern_all_equal_the_whole_ring(tmp_path):
+    # Noise-free frames rendered through the same solid-angle and polarization factors the
+    # stage divides out, at jittered photon energies (energy-aware path), with the default
+    # beamstop shadow masked (its holder lies in the +y sector).
+    rng = np.random.default_rng(10)
+    det = _detector(sectors=4)
+    np.save(tmp_path / "mask.npy", forward.default_mask(det))
+    det["mask_file"] = str(tmp_path / "mask.npy")
+    photon = 12.0 * (1 + 0.001 * rng.standard_normal(6))
+    _write_run(tmp_path / "run.h5", _frames(det, 6, photon, rng, photons_per_pixel=None), photon)
+    summary = integrate.run([tmp_path / "run.h5"], tmp_path / "s4.zarr", det, COMPUTE)
+    assert summary["sectors"] == 4 and summary["warnings"] == []
+    group = zarr.open_group(str(tmp_path / "s4.zarr"))
+    # sector k centred at k * 360 / 4 degrees (schema description)
+    np.testing.assert_array_equal(group["sector"][...], [0.0, 90.0, 180.0, 270.0])
+    assert group["sector"].attrs["units"] == "deg"
+    assert group["curves_sectors"].metadata.dimension_names == ("shot", "sector", "q")
+    sectors = group["curves_sectors"][...]
+    curves = group["curves"][...]
+    assert sectors.shape == (6, 4, 40) and sectors.dtype == np.float32 and np.all(np.isfinite(sectors))
+    # an isotropic I(q) looks the same in every direction once the factors are divided out
+    np.testing.assert_allclose(sectors, np.repeat(curves[:, None], 4, axis=1), rtol=5e-3)
+    # and the whole rings (sums over the sectors) are the plain integration's rings; float32
+    # partial sums in a different order differ by ~1e-7 relative
+    integrate.run([tmp_path / "run.h5"], tmp_path / "s1.zarr", dict(det, sectors=1), COMPUTE)
+    plain = zarr.open_group(str(tmp_path / "s1.zarr"))
+    assert "curves_sectors" not in plain and "sector" not in plain and "curves_var" not in plain
+    np.testing.assert_allclose(curves, plain["curves"][...], rtol=1e-5)
+
+
+def test_sectors_of_an_aligned_pattern_follow_p2(tmp_path):
+    # Pump polarized along azimuth 0 (+x): S(q, phi) = I0(q) + P2(cos(theta) cos(phi)) I2(q).
+    # Rings kept whole (q <= 2 1/Å on this 96 x 96 detector, no shadow) so each 90-degree
+    # sector samples its azimuths evenly.
+    rng = np.random.default_rng(11)
+    det = _detector(sectors=4, q_max=2.0, anisotropy={"enabled": True, "pump_polarization_deg": 0.0})
+    photon = np.full(3, 12.0)
+    i2 = 0.3 * np.exp(-(Q - 1.5) ** 2 / 0.1)
+    frames = forward.render_frames(Q, np.tile(_curve(Q), (3, 1)), photon, det, rng, photons_per_pixel=None,
+                                   masked_region=None, curves_p2=np.tile(i2, (3, 1)))
+    _write_run(tmp_path / "run.h5", frames, photon)
+    integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
+    group = zarr.open_group(str(tmp_path / "s.zarr"))
+    q = group["q"][...]
+    sectors, iso = group["curves_sectors"][...][0], group["curves"][...][0]
+    # the P2 fit over whole rings (sums over the sectors) still separates the parts
+    np.testing.assert_allclose(iso, _curve(q), rtol=3e-3)
+    np.testing.assert_allclose(group["curves_p2"][...][0], np.interp(q, Q, i2), atol=3e-3 * _curve(q).max())
+    # theta from Bragg's law, sin(theta) = q lambda / (4 pi), lambda = hc / E (CODATA hc)
+    hc = 12.398419843320026  # keV Å, from memory (h c = 1239.84198 eV nm)
+    cos2 = 1.0 - (q * hc / 12.0 / (4 * np.pi)) ** 2
+    phi = np.deg2rad(group["sector"][...])[:, None]
+    at_centre = _p2(np.sqrt(cos2) * np.cos(phi))  # P2 at each sector centre (METHODS.md sec 3)
+    ring = 0.75 * cos2 - 0.5  # P2 averaged over a whole ring: <cos^2 phi> = 1/2
+    # A sector's mean differs from the sector-free mean I0 + ring I2 as P2 at its centre does,
+    # its cos(2 phi) part averaged over the 90-degree sector: sin(pi/2) / (pi/2) = 2/pi.
+    predicted = (at_centre - ring) * (2.0 / np.pi) * np.interp(q, Q, i2)
+    strong = np.interp(q, Q, i2) > 0.03
+    # measured against the sectors' own average, so that pixel-level errors of the I0 part
+    # common to all sectors drop out (the predicted cos(2 phi) terms sum to 0 over 4 sectors)
+    found = sectors - sectors.mean(axis=0)
+    # direction: above the mean along the pump polarization (0, 180 deg), below across it
+    assert np.all(np.sign(found[:, strong]) == np.sign(at_centre - ring)[:, strong])
+    assert np.all(found[[0, 2]][:, strong] > 0) and np.all(found[[1, 3]][:, strong] < 0)
+    # size: within 5 %; a 90-degree sector of a 20-40 px ring holds 30-60 pixels, and the pixels
+    # straddling its edges shift its azimuth average by a few %
+    np.testing.assert_allclose(found[:, strong], predicted[:, strong], rtol=0.05)
+
+
+def test_sector_q_points_without_pixels_are_nan_and_named_in_a_warning(tmp_path):
+    # Masking rows >= centre + 30 px empties sector 1 (45..135 deg, towards +y) beyond
+    # r = 30 / sin(45 deg) = 42.4 px: every pixel of that sector there has y >= r sin 45.
+    rng = np.random.default_rng(12)
+    det = _detector(sectors=4)
+    mask = np.zeros((96, 96), bool)
+    mask[int(np.ceil(47.5 + 30)):] = True
+    np.save(tmp_path / "mask.npy", mask)
+    det["mask_file"] = str(tmp_path / "mask.npy")
+    photon = 12.0 * (1 + 0.001 * rng.standard_normal(4))
+    _write_run(tmp_path / "run.h5", _frames(det, 4, photon, rng, photons_per_pixel=None, masked_region=None), photon)
+    summary = integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
+    store = open_shots(tmp_path / "s.zarr")
+    sectors = store.curves(0, 4, "curves_sectors")
+    assert np.all(np.isfinite(store.curves(0, 4)))  # whole rings still covered
+    assert np.all(np.isfinite(sectors[:, [0, 2, 3]]))
+    # the warning names the q points NaN for the lowest or the highest shot energy: the union
+    # over the shots; each shot's NaN points run to the end of the grid
+    per_shot = ~np.isfinite(sectors[:, 1])
+    lost = per_shot.any(axis=0)
+    assert lost.any() and np.all(per_shot[:, -1])
+    assert np.all(np.diff(per_shot.astype(int), axis=1) >= 0)
+    # q at r = 42.4 px: 2 theta = atan(r * 0.4 mm / 50 mm), q = 4 pi sin(theta) / lambda
+    lam = 12.398419843320026 / 12.0  # Å, hc from memory
+    q_edge = 4 * np.pi * np.sin(np.arctan(30 / np.sin(np.pi / 4) * 0.4 / 50.0) / 2) / lam
+    first = store.q[lost][0]
+    step = store.q[1] - store.q[0]
+    # the NaN run starts where the sector ends, give or take the weighting window and stencil
+    assert q_edge - 3 * step <= first <= q_edge + step
+    text = [w for w in summary["warnings"] if "sector 1" in w]
+    assert len(text) == 1 and f"q = {first:.4g}-{store.q[-1]:.4g} 1/Å" in text[0]
+    assert "centre 90 deg" in text[0] and f"{int(lost.sum())} q point(s)" in text[0]
+    assert text[0] in dict(store.group.attrs)["warnings"]
+
+
+def _poisson_run(tmp_path, n, photon, rng, det):
+    darks = forward.render_dark((96, 96), 10, rng, level=20.0, noise=1.0)
+    np.save(tmp_path / "dark.npy", darks)
+    frames = forward.render_frames(Q, np.tile(_curve(Q), (n, 1)), photon, det, rng, photons_per_pixel=50.0,
+                                   masked_region=None, dark=darks.mean(axis=0))
+    _write_run(tmp_path / "run.h5", frames, photon)
+    return str(tmp_path / "dark.npy")
+
+
+def test_per_shot_variance_matches_the_shot_to_shot_scatter(tmp_path):
+    # 3200 shots of identical expectation (one photon energy, one curve), Poisson counts of
+    # ~50 photons per pixel on a 20-count pedestal that the dark file removes.
+    rng = np.random.default_rng(13)
+    n = 3200
+    photon = np.full(n, 12.0)
+    dark = _poisson_run(tmp_path, n, photon, rng, _detector())
+    # Statistics of the tolerance: the observed sample variance of n Gaussian-like values has
+    # relative standard error sqrt(2 / (n - 1)) = 2.5 %, so 10 % is 4 sigma at each of the 40 q
+    # points (chance of any failing ~ 40 * 6e-5); the predicted variance averaged over 3200
+    # shots has a negligible error of its own (each shot's ~ 1 / sqrt(photons in the bin)).
+    # A pedestal left in (20 of 50 counts) would be 40 % off; a missing (n_eff - 1) or a
+    # pixel spread not divided down to the mean's variance would be ~100x off.
+    for mode in ("counting", "spread"):
+        det = _detector(mask_file=None, dark_file=dark, variance=mode)
+        summary = integrate.run([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, dict(COMPUTE, chunk_shots=400))
+        assert summary["variance"] == mode and summary["warnings"] == []
+        store = open_shots(tmp_path / f"{mode}.zarr")
+        var = store.curves(0, n, "curves_var")
+        assert var.dtype == np.float32 and var.shape == (n, 40) and np.all(var > 0)
+        assert store.group["curves_var"].attrs["mode"] == mode
+        observed = store.curves(0, n).astype(np.float64).var(axis=0, ddof=1)
+        np.testing.assert_allclose(var.mean(axis=0), observed, rtol=0.10)
+        # pooled over the 40 q points (about 30 independent: neighbours share a quarter of
+        # their pixel weight): standard error ~0.5 %, so 2 % is 4 sigma
+        assert abs(np.mean(var.mean(axis=0) / observed) - 1) < 0.02
+
+
+def test_variance_read_between_grid_points_is_conservative_as_documented(tmp_path):
+    # Energy-aware: each shot's variance curve is interpolated like its curve (4-point Lagrange
+    # weights c at fractional grid position u). The true variance of the interpolated mean is
+    # v c^T R c, with R the correlation of neighbouring grid values: with linear pixel
+    # splitting and pixels spread evenly over a grid step, neighbours share sum w_k w_k+1 =
+    # int u (1 - u) du = 1/6 of the weight products against sum w_k^2 = 2 int u^2 du = 2/3,
+    # so R has 1 on the diagonal and 1/4 next to it (derived in this test's comment).
+    rng = np.random.default_rng(14)
+    n = 3200
+    photon = 12.0 * (1 + 0.01 * rng.standard_normal(n))  # spreads shots over grid positions
+    dark = _poisson_run(tmp_path, n, photon, rng, _detector())
+    det = _detector(mask_file=None, dark_file=dark, variance="counting", q_max=2.0)
+    integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, dict(COMPUTE, chunk_shots=400))
+    store = open_shots(tmp_path / "s.zarr")
+    var = store.curves(0, n, "curves_var").mean(axis=0)
+    observed = store.curves(0, n).astype(np.float64).var(axis=0, ddof=1)
+    e0 = np.median(store.table["photon_energy"])
+    step = store.q[1] - store.q[0]
+    t = (store.q[None, :] * e0 / store.table["photon_energy"][:, None] - store.q[0]) / step
+    u = t - np.floor(t)
+    # Lagrange weights on nodes -1, 0, 1, 2 written out independently
+    nodes = np.array([-1.0, 0.0, 1.0, 2.0])
+    c = np.stack([np.prod([(u - nodes[m]) / (nodes[j] - nodes[m]) for m in range(4) if m != j], axis=0)
+                  for j in range(4)])
+    r = np.eye(4) + 0.25 * (np.eye(4, k=1) + np.eye(4, k=-1))
+    true_factor = np.einsum("jsq,jk,ksq->sq", c, r, c).mean(axis=0)  # per q, over the shots
+    assert np.all(true_factor <= 1.0 + 1e-12) and true_factor.min() < 0.9
+    # observed = v * true_factor; stored = v: same 2.5 %-per-point statistics as above, 10 % at 4 sigma
+    np.testing.assert_allclose(var * true_factor, observed, rtol=0.10)
+    assert np.all(var > observed * 0.9)  # conservative, within the noise
+
+
+def test_sector_and_variance_settings_are_checked(tmp_path):
+    for value in (0, -2, 2.5):
+        with pytest.raises(ConfigError, match=r"detector\.sectors"):
+            _detector(sectors=value)
+    with pytest.raises(ConfigError, match=r"detector\.variance"):
+        _detector(variance="poisson")
+    assert _detector()["sectors"] == 1 and _detector()["variance"] is None
+    assert _detector(sectors=None)["sectors"] is None  # null: off, like 1
+    _write_run(tmp_path / "run.h5", np.zeros((4, 96, 96), np.uint16), np.full(4, 12.0))
+    out = tmp_path / "s.zarr"
+    det = _detector(variance="counting", anisotropy={"enabled": True})
+    with pytest.raises(ConfigError, match=r"detector\.variance") as err:
+        integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+    assert "detector.anisotropy.enabled" in str(err.value)
+    assert _nothing_written(out)
+
+
+def test_variance_leaves_out_the_saturated_pixels_of_a_shot(tmp_path):
+    rng = np.random.default_rng(15)
+    photon = np.full(16, 12.0)
+    frames = _frames(_detector(), 16, photon, rng, photons_per_pixel=100.0, masked_region=None)
+    frames[3, 60, 20:40] = 65535  # a saturated streak in one shot
+    _write_run(tmp_path / "run.h5", frames, photon)
+    for mode in ("counting", "spread"):
+        det = _detector(variance=mode, saturation_level=65000, sectors=3)
+        summary = integrate.run([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, COMPUTE)
+        assert summary["shot_pixels_left_out"] == 20 and summary["warnings"] == []
+        store = open_shots(tmp_path / f"{mode}.zarr")
+        var = store.curves(0, 16, "curves_var")
+        # left in, 20 pixels of 65535 counts against ~100 would raise some q points' variance
+        # by orders of magnitude (counting: + 20 * 65535 / F^2; spread: their squared excess)
+        assert np.all(np.isfinite(var)) and np.all(var > 0)
+        assert np.all(var[3] < 2 * np.median(var, axis=0))
+        assert np.all(np.isfinite(store.curves(0, 16, "curves_sectors")))
