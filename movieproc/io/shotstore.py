@@ -11,8 +11,10 @@ curves             (shot, q)     float32     isotropic I(q) per shot, detector u
 pulse_id ...       (shot)        per field   the shot table (see io.runfile)
 =================  ============  ==========  =====================================
 
-Further per-shot curve arrays (e.g. an anisotropic component) may be present
-with dims (shot, q). Group attrs hold the run files, their checksums and the
+Frames-mode stores may hold more: ``curves_p2`` (shot, q), the P2 part after
+polarized excitation; ``curves_sectors`` (shot, sector, q) with the ``sector``
+centre azimuths (deg); ``curves_var`` (shot, q), the variance of each shot's
+mean intensity per q point; ``pixel_count`` (q). Group attrs hold the run files, their checksums and the
 settings that produced the store.
 """
 
