@@ -111,6 +111,8 @@ def robust_outliers(scores, threshold):
         In units of 1.4826 * MAD of the scores.
     """
     s = np.asarray(scores, float)
+    if not np.isfinite(s).any():
+        return np.zeros(s.shape, bool)
     med = np.nanmedian(s)
     mad = np.nanmedian(np.abs(s - med)) * MAD_TO_SIGMA
     if not mad > 0:
