@@ -208,7 +208,9 @@ def run(binned_path, models_path, out, config: dict):
         if fit_res is not None and fcfg["mode"] == "trajectory":
             # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
             amplitude = fit_res.amplitudes["alpha"] * fit_res.populations[:, 0]
-        arrays.update(_structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude))
+        structures, result["geometry_units"] = _structures(fcfg, models, diff, err, use, basis, delay, warnings,
+                                                           amplitude)
+        arrays.update(structures)
 
     _write(out, q, delay, arrays, result, config, warnings)
 
@@ -307,7 +309,7 @@ def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=N
 def _structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude=None):
     pos = store.read(models, "traj_positions")
     elements = [str(e) for e in models["element"][...]]
-    params = {}
+    params, units = {}, {}
     for name, idx in fcfg["geometry"].items():
         if max(idx) >= pos.shape[1]:
             raise ConfigError(f"fit.geometry.{name}", f"atom indices {idx}", f"indices below {pos.shape[1]} atoms")
@@ -328,9 +330,10 @@ def _structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude=
     for name in params:
         for kind, values in (("", ff.value[name]), ("_lower", ff.lower[name]), ("_upper", ff.upper[name])):
             out[f"geometry_{name}{kind}"] = _rows(np.where(sig, values, np.nan), use)
+            units[f"geometry_{name}{kind}"] = "Å" if len(fcfg["geometry"][name]) == 2 else "deg"
     if ff.at_end.any():
         warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: the trajectory may be too short")
-    return out
+    return out, units
 
 
 DIMS = {
@@ -372,7 +375,7 @@ def _write(out, q, delay, arrays, result, config, warnings):
             u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
                  "svd_v": units, "r": "Å", "solute_realspace": f"({units}) / Å"}.get(name)
             if name.startswith("geometry_"):
-                u = "deg" if len(config["fit"]["geometry"].get(name[9:].replace("_lower", "").replace("_upper", ""), [0, 0])) == 3 else "Å"
+                u = result["geometry_units"][name]
             if name == "solute_realspace":
                 attrs_extra = {"meaning": "r^2 dS(r) = r / (2 pi^2) * integral of q dS(q) sin(q r) exp(-kappa q^2) dq, "
                                           "kappa = 0.03 Å^2: which distances change"}
