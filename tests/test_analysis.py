@@ -185,7 +185,10 @@ def test_bootstrap_over_shots(reduced):
     p = store.open_group(reduced / "boot.zarr").attrs["fit_parameters"]
     for name in ("t0", "sigma", "lifetime", "alpha"):
         assert "12 replicates over shots" in p[name]["bootstrap"]
-        assert 0.3 < p[name]["bootstrap_error"] / p[name]["error"] < 3.5, (name, p[name])
+            # 12 replicates fix a standard deviation to ~20 % (1/sqrt(2*11)); the Jacobian error
+        # leaves out the correlation between neighbouring bins that share references, so the
+        # bootstrap may be up to ~2x larger: 0.5-3 is a 3-sigma band around [1, 2]
+        assert 0.5 < p[name]["bootstrap_error"] / p[name]["error"] < 3.0, (name, p[name])
 
 
 def test_network_kinetics_and_its_validation(reduced):
@@ -203,3 +206,29 @@ def test_network_kinetics_and_its_validation(reduced):
         _analyze(reduced, "bad.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
                  "fit.network=[[1, 1]]", "fit.lifetimes_ps=[20.0]")
     assert not (reduced / "bad.zarr").exists()
+
+
+def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
+    """The absolute scale holds whatever the curves were normalized by (window, total, none)."""
+    cfg = _config(reduced, "differences.normalization=total")
+    difference.run(reduced / "shots.zarr", reduced / "selection.zarr", reduced / "bins.zarr",
+                   tmp_path / "binned_total.zarr", cfg)
+    analyze.run(tmp_path / "binned_total.zarr", reduced / "models.zarr", tmp_path / "total.zarr", cfg)
+    p = store.open_group(tmp_path / "total.zarr").attrs["fit_parameters"]["alpha"]
+    # scenario truth 0.15 (demo_data/scenario.yaml), within 3 of its standard errors
+    assert abs(p["value"] - 0.15) < 3 * p["error"], p
+    # and so do curves that were not normalized at all (detector units)
+    cfg = _config(reduced, "differences.normalization=none")
+    difference.run(reduced / "shots.zarr", reduced / "selection.zarr", reduced / "bins.zarr",
+                   tmp_path / "binned_none.zarr", cfg)
+    analyze.run(tmp_path / "binned_none.zarr", reduced / "models.zarr", tmp_path / "none.zarr", cfg)
+    p = store.open_group(tmp_path / "none.zarr").attrs["fit_parameters"]["alpha"]
+    assert abs(p["value"] - 0.15) < 3 * p["error"], p
+
+
+def test_relative_scale_says_its_solvent_units_are_arbitrary(reduced):
+    a = _analyze(reduced, "relative.zarr", "scaling.mode=relative")
+    assert a["solvent_coef"].attrs["units"] == "arbitrary"
+    assert any("arbitrary units" in w for w in a.attrs["warnings"])
+    b = _analyze(reduced, "absolute.zarr")
+    assert b["solvent_coef"].attrs["units"].startswith("K")

@@ -114,3 +114,27 @@ def test_count_input_errors():
         msvd.count_components(D, err=np.ones((5, 6)))  # synthesis needs a Generator
     with pytest.raises(InputError):
         msvd.count_components(D, noise=np.ones((3, 4)))
+
+
+def test_noise_rows_with_unequal_errors_are_measured_in_their_own_units():
+    # 40 delays: 20 with errors 1, 20 with errors 0.3 (bins with ~11x the shots). A smooth
+    # rank-1 signal with weighted singular value ~54 sits well above the weighted noise
+    # (~sqrt(n_delay) + sqrt(n_q) ~ 20 for unit-variance noise: Marchenko-Pastur edge,
+    # from memory). Noise rows drawn with their own errors must give a threshold near
+    # that level, not the one of the noisiest rows applied to all.
+    rng = np.random.default_rng(12)
+    nd, nq = 40, 150
+    err = np.where(np.arange(nd)[:, None] < 20, 1.0, 0.3) * np.ones((1, nq))
+    t = np.linspace(0, 1, nd)
+    q = np.linspace(0, 1, nq)
+    signal = np.outer(np.sin(np.pi * t), np.sin(2 * np.pi * q))
+    w_signal = np.linalg.svd(signal / err, compute_uv=False)[0]
+    D = signal * (54.0 / w_signal) + rng.standard_normal((nd, nq)) * err
+    noise_err = err[:12]
+    noise = rng.standard_normal((12, nq)) * noise_err
+    noise[6:] *= 0.3
+    noise_err = noise_err.copy()
+    noise_err[6:] *= 0.3
+    res = msvd.count_components(D, noise, err=err, rng=np.random.default_rng(1), noise_err=noise_err)
+    assert res.threshold < 30, res.threshold
+    assert res.n == 1

@@ -121,7 +121,7 @@ def _delay_axis(ax, delay):
 
 
 def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, solvent_err=None, terms=(),
-             chi2=None, params_text="", title=""):
+             chi2=None, params_text="", title="", coef_units=""):
     """Fitted excited fraction, per-delay solvent coefficients and chi2 against delay.
 
     Parameters
@@ -163,7 +163,7 @@ def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, so
             e = None if solvent_err is None else solvent_err[:, j]
             ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=name)
         ax.axhline(0, color="0.7", lw=0.5)
-        ax.set_ylabel("solvent term (dT: K)")
+        ax.set_ylabel(f"solvent term ({coef_units})" if coef_units else "solvent term")
         ax.legend(fontsize=8)
     if chi2 is not None:
         ax = axes[i]

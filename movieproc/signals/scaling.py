@@ -80,6 +80,35 @@ def unit_cell_scattering(q, solute_S, solute_elements, solvent_formula, solvent_
     return np.asarray(solute_S, float) + solute_inc + solvent_per_solute * (coh + inc)
 
 
-def absolute_scale(q, unit_cell, q_range):
-    """Factor from window-normalized units to e.u. per solute: the window mean of ``unit_cell``."""
-    return float(np.mean(np.asarray(unit_cell)[window_mask(q, q_range)]))
+def absolute_scale(q, unit_cell, q_range, reference=None):
+    """Factor from the data's units to e.u. per solute molecule.
+
+    Parameters
+    ----------
+    q : array_like (nq,)
+        1/Å.
+    unit_cell : array_like (nq,)
+        Scattering of one solute and its share of solvent (:func:`unit_cell_scattering`), e.u.
+    q_range : (float, float)
+        A high-q window (1/Å) where the liquid's structure has faded, so the
+        measured intensity follows the independent-atom ``unit_cell``.
+    reference : array_like (nq,), optional
+        The measured pump-off curve in the data's units (e.g. the mean of the
+        normalized pump-off curves). The factor is window mean of ``unit_cell``
+        over window mean of ``reference``: right whatever the curves were
+        normalized by (window, total or nothing). Without it the data are
+        taken as normalized to 1 in the window.
+
+    Returns
+    -------
+    float
+    """
+    m = window_mask(q, q_range)
+    factor = float(np.mean(np.asarray(unit_cell)[m]))
+    if reference is not None:
+        ref = float(np.mean(np.asarray(reference)[m]))
+        if not ref > 0:
+            raise ConfigError("differences.norm_q_range", f"a pump-off mean of {ref!r} in the window",
+                              "a window of positive measured intensity for the absolute scale")
+        factor /= ref
+    return factor

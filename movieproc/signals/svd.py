@@ -174,7 +174,8 @@ class ComponentCount:
     warnings: list = field(default_factory=list)
 
 
-def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise=5, autocorr_min=0.8):
+def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise=5, autocorr_min=0.8,
+                     noise_err=None):
     """Count the components of a (delay, q) map that rise above noise and are smooth.
 
     Parameters
@@ -200,6 +201,12 @@ def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise
         Number of synthesised noise maps.
     autocorr_min : float
         Minimum lag-1 autocorrelation of both singular vectors.
+    noise_err : array_like, shape (m, n_q), optional
+        Standard errors of the ``noise`` rows. With it (and weights 1/err) the
+        noise level is measured in units of each row's own error, (noise /
+        noise_err) per q, and the synthesised maps are drawn in those weighted
+        units, so rows with more shots (smaller errors) are not given noise they
+        do not have.
 
     Returns
     -------
@@ -240,9 +247,18 @@ def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise
             if N.shape[0] < 2:
                 raise InputError("argument 'noise'", "1 row", "at least 2 rows to estimate the noise level per q")
             need_rng()
-            sd = N.std(axis=0, ddof=1)
-            maps = [rng.standard_normal(D.shape) * sd * wm for _ in range(int(n_noise))]
-            source = f"{n_noise} Gaussian maps with the per-q spread of a {N.shape[0]}-row noise map"
+            if noise_err is not None and err_arr is not None:
+                ne = np.asarray(noise_err, dtype=float)
+                if ne.shape != N.shape or not np.all(np.isfinite(ne)) or np.any(ne <= 0):
+                    raise InputError("argument 'noise_err'", f"shape {ne.shape}", f"positive errors of shape {N.shape}")
+                sd_z = (N / ne).std(axis=0, ddof=1)  # noise per q in units of the rows' own errors
+                maps = [rng.standard_normal(D.shape) * sd_z * err_arr * wm for _ in range(int(n_noise))]
+                source = (f"{n_noise} Gaussian maps with the per-q spread, in units of each row's error, "
+                          f"of a {N.shape[0]}-row noise map")
+            else:
+                sd = N.std(axis=0, ddof=1)
+                maps = [rng.standard_normal(D.shape) * sd * wm for _ in range(int(n_noise))]
+                source = f"{n_noise} Gaussian maps with the per-q spread of a {N.shape[0]}-row noise map"
     elif err_arr is not None:
         need_rng()
         maps = [rng.standard_normal(D.shape) * err_arr * wm for _ in range(int(n_noise))]

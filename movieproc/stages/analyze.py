@@ -64,7 +64,7 @@ def read_differentials(path, q):
     return out
 
 
-def _absolute_scale(config, q, models, warnings):
+def _absolute_scale(config, q, models, reference):
     sc = config["scaling"]
     if sc["mode"] != "solute":
         return 1.0
@@ -76,7 +76,8 @@ def _absolute_scale(config, q, models, warnings):
             raise ConfigError(f"scaling.{key}", "null", "a value, needed for scaling.mode 'solute'")
     els = [str(e) for e in models["element"][...]]
     unit = scaling.unit_cell_scattering(q, models["ground_S"][...], els, sc["solvent_formula"], sc["solvent_per_solute"])
-    factor = scaling.absolute_scale(q, unit, config["differences"]["norm_q_range"])
+    # the high-q window of the unit cell against the same window of the measured pump-off curve
+    factor = scaling.absolute_scale(q, unit, config["differences"]["norm_q_range"], reference)
     log.info("absolute scale: 1 normalized unit = %.6g e.u. per solute molecule", factor)
     return factor
 
@@ -95,10 +96,12 @@ def run(binned_path, models_path, out, config: dict):
     if models is not None and (mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12)):
         raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {binned_path}")
 
-    factor = _absolute_scale(config, q, models, warnings)
+    ok_rows = ~low & np.all(np.isfinite(off_mean), axis=1)
+    factor = _absolute_scale(config, q, models, np.mean(off_mean[ok_rows], axis=0) if ok_rows.any() else None)
     units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else b["diff"].attrs.get("units", "")
     diff, err = diff * factor, err * factor
     use = ~low & np.all(np.isfinite(diff), axis=1) & np.all(np.isfinite(err) & (err > 0), axis=1)
+    usable = use.copy()  # before any fit delay range: the SVD noise rows are chosen from these
     if use.sum() == 0:
         raise DataError(f"no delay bin of {binned_path} has enough shots (binning.min_shots) for the analysis")
 
@@ -128,7 +131,12 @@ def run(binned_path, models_path, out, config: dict):
         curves.append(np.nanmean(off_mean[use], axis=0) * factor)
     basis = np.array(curves) if curves else None
 
-    result = {"names": names, "units": units, "factor": factor, "use": use}
+    result = {"names": names, "units": units, "factor": factor, "use": use,
+              "coef_units": "K (dT), g/cm3 (drho)" if config["scaling"]["mode"] == "solute" and scfg["differentials"]
+              else "arbitrary"}
+    if scfg["enabled"] and scfg["differentials"] and config["scaling"]["mode"] != "solute":
+        warnings.add("solvent coefficients are in arbitrary units: the differentials file is absolute (per K) but "
+                     "the data are relative; set scaling.mode: solute (with the solvent composition) for dT in K")
     arrays = {}
 
     # --- fits
@@ -148,6 +156,11 @@ def run(binned_path, models_path, out, config: dict):
         boot = store.read(b, "diff_boot").astype(float) * factor if "diff_boot" in b else None
         fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread,
                               None if boot is None else boot[:, use])
+    if fit_res is not None and fcfg["mode"] == "species" and fcfg["species_curves"] == "free" and \
+            any(n != "normalization" for n in names):
+        warnings.add("species fit with free curves: the split between the species curves and the per-delay solvent "
+                     "terms is a convention (curves carry no solvent-shaped part), so solvent_coef and solute are "
+                     "not determined by the data alone")
     if fit_res is not None:
         arrays["model"] = _rows(fit_res.model, use)
         arrays["residual"] = _rows(fit_res.residual, use)
@@ -181,15 +194,16 @@ def run(binned_path, models_path, out, config: dict):
 
     # --- SVD of the solute difference
     ncfg = config["svd"]
-    noise = None
+    noise = noise_err = None
     if ncfg["noise_delays_ps"]:
         lo, hi = ncfg["noise_delays_ps"]
-        rows = use & (delay >= lo) & (delay <= hi)
+        rows = usable & (delay >= lo) & (delay <= hi)
         if rows.sum() >= 2:
-            noise = diff[rows]
+            noise, noise_err = diff[rows], err[rows]
         else:
             warnings.add(f"svd.noise_delays_ps [{lo}, {hi}] holds {rows.sum()} usable bins; noise drawn from the errors")
-    count = svd.count_components(solute, noise, err=err[use], rng=np.random.default_rng(ncfg["seed"]))
+    count = svd.count_components(solute, noise, err=err[use], rng=np.random.default_rng(ncfg["seed"]),
+                                 noise_err=noise_err)
     for w in count.warnings:
         warnings.add(w)
     u, s, vt = svd.svd(solute, weights=1.0 / err[use])
@@ -309,6 +323,10 @@ def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=N
 def _structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude=None):
     pos = store.read(models, "traj_positions")
     elements = [str(e) for e in models["element"][...]]
+    n_members = len((models.attrs.get("input_files") or {}).get("trajectory", []) or [])
+    if n_members > 1:
+        warnings.add(f"the model curves average {n_members} trajectories, but positions and geometric parameters "
+                     "are those of the first one: read them as indicative")
     params, units = {}, {}
     for name, idx in fcfg["geometry"].items():
         if max(idx) >= pos.shape[1]:
@@ -355,7 +373,8 @@ def _write(out, q, delay, arrays, result, config, warnings):
     if fit is not None:
         attrs["fit_mode"] = config["fit"]["mode"]
         attrs["fit_parameters"] = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
-                                       "units": "ps" if k in ("t0", "sigma", "lifetime") or k.startswith("tau") else ""}
+                                       "units": "ps" if k in ("t0", "sigma", "lifetime", "osc_period", "osc_damping")
+                                       or k.startswith("tau") else ""}
                                    for k, v in fit.params.items()}
         for k, v in fit.amplitudes.items():
             attrs["fit_parameters"][k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
@@ -373,7 +392,9 @@ def _write(out, q, delay, arrays, result, config, warnings):
         for name, values in arrays.items():
             dims = DIMS.get(name, ("delay",))
             u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
-                 "svd_v": units, "r": "Å", "solute_realspace": f"({units}) / Å"}.get(name)
+                 "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
+                 "solute_realspace": f"({units}) / Å", "population": "1", "frame_amplitude": "1",
+                 "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
             if name.startswith("geometry_"):
                 u = result["geometry_units"][name]
             if name == "solute_realspace":
@@ -381,7 +402,10 @@ def _write(out, q, delay, arrays, result, config, warnings):
                                           "kappa = 0.03 Å^2: which distances change"}
             elif name == "solvent_coef" or name == "solvent_coef_err":
                 attrs_extra = {"terms": result["names"],
-                               "meaning": "per-delay coefficient of each term; dT in K on the absolute scale"}
+                               "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
+                                          "with differentials per K; normalization: dimensionless nuisance)"}
+            elif name.startswith("svd_"):
+                attrs_extra = {"meaning": "SVD of the solute difference weighted by 1 / diff_err (dimensionless)"}
             else:
                 attrs_extra = None
             store.write_array(g, name, values, dims, units=u, attrs=attrs_extra)

@@ -59,7 +59,9 @@ def run(movie_path, out_dir, config: dict):
                               store.read(m, "solvent_coef") if "solvent_coef" in m else None,
                               store.read(m, "solvent_coef_err") if "solvent_coef_err" in m else None, terms,
                               store.read(m, "chi2") if "chi2" in m else None, text,
-                              title=f"{name}: kinetics"), "kinetics.png")
+                              title=f"{name}: kinetics",
+                              coef_units=m["solvent_coef"].attrs.get("units", "") if "solvent_coef" in m else ""),
+             "kinetics.png")
     if model is not None:
         save(figures.residual_map(q, delay, store.read(m, "residual"), err, title=f"{name}: fit residuals"),
              "residual_map.png")
