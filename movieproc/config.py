@@ -153,6 +153,10 @@ def _check_consistency(config: dict):
             raise ConfigError("binning.edges_ps", "no edges", "a list of at least two increasing edges (ps) in edges mode")
         if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:])):
             raise ConfigError("binning.edges_ps", f"{edges}", "strictly increasing edges")
+    model = config.get("model", {})
+    if model.get("anomalous") and model.get("photon_energy_kev") is None:
+        raise ConfigError("model.photon_energy_kev", "null with model.anomalous: true",
+                          "the photon energy in keV at which f' and f'' are taken")
     lo, hi = config.get("differences", {}).get("norm_q_range", [0, 1])
     if hi <= lo:
         raise ConfigError("differences.norm_q_range", f"[{lo}, {hi}]", "[low, high] with low < high (1/Å)")

@@ -79,7 +79,10 @@ def summarize_movie(path) -> str:
     if sc:
         lines.append(f"selection: kept {sc.get('kept')} of {sc.get('total')} shots; dropped per reason: "
                      + ", ".join(f"{k} {v}" for k, v in sc.items() if k not in ("total", "kept", "dropped",
-                                                                                 "kept_pump_on", "kept_pump_off")))
+                                                                                 "kept_pump_on", "kept_pump_off",
+                                                                                 "outlier_pump_on", "outlier_pump_off")))
+        if "outlier_pump_on" in sc:
+            lines.append(f"outliers: {sc['outlier_pump_on']} pump-on, {sc['outlier_pump_off']} pump-off")
     if low.any():
         lines.append(f"bins with too few shots: {', '.join(f'{d:.3g} ps ({c})' for d, c in zip(delay[low], n[low]))}")
     if "chi2" in m:

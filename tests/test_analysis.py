@@ -232,3 +232,12 @@ def test_relative_scale_says_its_solvent_units_are_arbitrary(reduced):
     assert any("arbitrary units" in w for w in a.attrs["warnings"])
     b = _analyze(reduced, "absolute.zarr")
     assert b["solvent_coef"].attrs["units"].startswith("K")
+
+
+def test_fit_errors_name_the_config_keys(reduced):
+    # equal starting lifetimes make the sequential scheme's rates repeated: the fit refuses,
+    # naming the key the user sets
+    with pytest.raises(ConfigError, match="fit.lifetimes_ps"):
+        _analyze(reduced, "rep.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[10.0, 10.0]")
+    with pytest.raises(ConfigError, match="model.photon_energy_kev"):
+        _config(reduced, "model.anomalous=true")

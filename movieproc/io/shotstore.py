@@ -104,6 +104,13 @@ class ShotStore:
         """Per-shot curves of shots [start, stop), float32 (n, nq)."""
         return self.group[name][start:stop]
 
+    def rows(self, index, name: str = "curves") -> np.ndarray:
+        """Per-shot curves of the shots ``index`` (increasing ints), float32 (len(index), nq).
+
+        Reads only the chunks holding those shots, not the whole range between them.
+        """
+        return self.group[name].get_orthogonal_selection((np.asarray(index, dtype=np.int64), slice(None)))
+
     def has(self, name: str) -> bool:
         return name in self.group
 

@@ -237,7 +237,35 @@ def _rows(values, use):
     return full
 
 
+#: Keys the fitting cores name (their own parameter names) -> the config keys a user sets.
+_CORE_KEYS = {
+    "fit.initial.t0": "fit.time_zero_ps", "fit.initial.sigma": "fit.irf_sigma_ps",
+    "fit.initial.lifetime": "fit.lifetimes_ps", "fit.initial.osc_period": "fit.oscillation_period_ps",
+    "fit.initial.osc_damping": "fit.oscillation_damping_ps", "fit.kinetics.species": "fit.signal_species",
+    "fit.model.oscillation": "fit.oscillation", "fit.kinetics.n_lifetimes": "fit.lifetimes_ps",
+}
+
+
 def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, boot=None):
+    """The global fit, with errors of the fitting cores named by the config keys a user sets."""
+    try:
+        return _fit(fcfg, models, diff, err, delay, basis, names, warnings, spread, boot)
+    except (ConfigError, DataError) as err_:
+        # a model that cannot be evaluated at the starting values is a config problem too
+        exc = err_ if isinstance(err_, ConfigError) else err_.__cause__
+        if not isinstance(exc, ConfigError):
+            raise
+        key = _CORE_KEYS.get(exc.key, exc.key)
+        if key.startswith("fit.initial.tau_"):
+            key = "fit.lifetimes_ps"
+        if key == "fit.kinetics.rates":
+            key = "fit.network" if fcfg["kinetics"] == "network" else "fit.lifetimes_ps"
+        if key == exc.key and exc is err_:
+            raise
+        raise ConfigError(key, exc.found, exc.expected) from err_
+
+
+def _fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, boot=None):
     if fcfg["mode"] == "trajectory":
         if models is None or "traj_dS" not in models:
             raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")

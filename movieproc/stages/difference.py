@@ -54,10 +54,8 @@ def run(shots_path, selection_path, bins_path, out, config: dict):
 
     def work(a, b):
         idx, r = on_idx[a:b], refs[a:b]
-        lo = int(min(idx.min(), r.min()))
-        hi = int(max(idx.max(), r.max())) + 1
         rows = np.unique(np.concatenate([idx, r.ravel()]))
-        block = shots.curves(lo, hi)[rows - lo]
+        block = shots.rows(rows)
         norm = normalize(block, shots.q, mode, qr)
         pos_on = np.searchsorted(rows, idx)
         pos_ref = np.searchsorted(rows, r)

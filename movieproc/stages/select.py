@@ -40,12 +40,21 @@ def run(shots_path, out, config: dict):
     score = np.full(n, np.nan)
     out_cfg = sel["outliers"]
     if out_cfg["enabled"]:
+        pump = t["pump_on"]
+
         def block(start, stop):
+            # pump-on and pump-off shots are scored against the median of their own kind, so
+            # a strong pump signal is never mistaken for an outlier
             ok = np.flatnonzero((flags[start:stop] & selection.REASONS["pulse_energy"]) == 0)
-            if ok.size < 5:
-                return start, ok, np.full(ok.size, np.nan)
+            scores = np.full(ok.size, np.nan)
+            if ok.size == 0:
+                return start, ok, scores
             c = normalize(shots.curves(start, stop)[ok], shots.q, diff_cfg["normalization"], diff_cfg["norm_q_range"])
-            return start, ok, selection.outlier_scores(c)
+            for state in (True, False):
+                same = pump[start + ok] == state
+                if same.sum() >= 5:
+                    scores[same] = selection.outlier_scores(c[same])
+            return start, ok, scores
 
         for start, ok, s in map_ranges(block, chunk_ranges(n, out_cfg["window"]), compute["workers"],
                                        compute["scheduler"], compute["progress"], "select"):
@@ -56,6 +65,9 @@ def run(shots_path, out, config: dict):
     on = t["pump_on"]
     counts["kept_pump_on"] = int(np.sum(keep & on))
     counts["kept_pump_off"] = int(np.sum(keep & ~on))
+    out_bit = (flags & selection.REASONS["outlier"]) != 0
+    counts["outlier_pump_on"] = int(np.sum(out_bit & on))
+    counts["outlier_pump_off"] = int(np.sum(out_bit & ~on))
     log.info("kept %d of %d shots (%d pump-on, %d pump-off); dropped: %s", counts["kept"], n,
              counts["kept_pump_on"], counts["kept_pump_off"],
              ", ".join(f"{k} {v}" for k, v in counts.items() if k in selection.REASONS))
