@@ -9,7 +9,7 @@ from movieproc.detector import corrections, geometry, masks
 def test_polarization_check_values_for_horizontal_polarization():
     # Fully polarized along x (horizontal), 2theta = 30 deg: Pol = 1 - sin^2(2theta) cos^2(phi),
     # = 1 - 0.25 = 0.75 in the polarization plane (phi = 0) and 1 perpendicular to it (phi = 90 deg)
-    # (Als-Nielsen & McMorrow, Elements of Modern X-ray Physics, ch. 1, from memory; METHODS.md sec. 1).
+    # (Als-Nielsen & McMorrow, Elements of Modern X-ray Physics, ch. 1, from memory; docs/METHODS.md sec. 1).
     tt = np.deg2rad(30.0)
     assert corrections.polarization_factor(tt, 0.0, 1.0) == pytest.approx(0.75, rel=1e-15)
     assert corrections.polarization_factor(tt, np.pi / 2, 1.0) == pytest.approx(1.0, rel=1e-15)
@@ -28,7 +28,7 @@ def test_polarization_unpolarized_limit():
 
 
 def test_solid_angle_untilted_is_cos_cubed():
-    # Without tilt A (P.n)/|P|^3 = (A / D^2) cos^3(2theta) (METHODS.md sec. 1).
+    # Without tilt A (P.n)/|P|^3 = (A / D^2) cos^3(2theta) (docs/METHODS.md sec. 1).
     g = geometry.Geometry((40, 50), 30.0, 0.5, (20.2, 10.6))
     tt, _ = geometry.scattering_angles(g)
     np.testing.assert_allclose(corrections.solid_angle_factor(g), np.cos(tt) ** 3, rtol=1e-13)
@@ -43,7 +43,7 @@ def test_sensor_factor_closed_form():
 
 
 def test_absorption_factor_matches_the_sheet_formula():
-    # [exp(-mu d) - exp(-mu d / cos 2theta)] / [mu (1/cos 2theta - 1)] (METHODS.md sec. 1),
+    # [exp(-mu d) - exp(-mu d / cos 2theta)] / [mu (1/cos 2theta - 1)] (docs/METHODS.md sec. 1),
     # divided by its forward limit d exp(-mu d).
     mu, d = 2.0, 0.3
     tt = np.deg2rad(np.array([5.0, 30.0, 60.0, 75.0]))

@@ -53,7 +53,7 @@ def nearest_bin_debye(q, positions, elements, dr):
 
 
 def diatomic(q, f1, f2, r, sigma=0.0):
-    # closed form, METHODS.md sec 5 / Debye 1915: |f1|^2 + |f2|^2 + 2 Re(f1 f2*) sin(qr)/(qr)
+    # closed form, docs/METHODS.md sec 5 / Debye 1915: |f1|^2 + |f2|^2 + 2 Re(f1 f2*) sin(qr)/(qr)
     return (np.abs(f1) ** 2 + np.abs(f2) ** 2
             + 2 * np.real(f1 * np.conj(f2)) * np.sinc(q * r / np.pi) * np.exp(-sigma**2 * q**2 / 2))
 
@@ -116,7 +116,7 @@ def test_random_cluster_against_brute_force():
     np.testing.assert_allclose(D.debye(Q, positions, elements), ref, atol=1e-6 * ref.max())
     np.testing.assert_allclose(D.debye(Q, positions, elements, max_chunk=301 * 37), ref,
                                atol=1e-6 * ref.max())  # chunking does not change the sum
-    # METHODS.md sec 5: linear sharing at dr = 0.01 keeps errors ~1e-5 of S; require 1e-4
+    # docs/METHODS.md sec 5: linear sharing at dr = 0.01 keeps errors ~1e-5 of S; require 1e-4
     hist = D.debye_histogram(Q, positions, elements, dr=0.01)
     assert np.abs(hist - ref).max() < 1e-4 * np.abs(ref).max()
 
@@ -171,7 +171,7 @@ def test_difference_linear_sharing_meets_1e3_nearest_bin_does_not():
     # issue requirement: histogram path within 1e-3 of max|dS| at dr = 0.01 Å
     assert np.abs(linear - exact).max() < 1e-3 * scale
     # nearest-bin moves each distance by up to dr/2 = 0.005 Å, ~5 % of the 0.1 Å change
-    # (METHODS.md sec 5: ~1 % of a difference signal): it must miss the 1e-3 target
+    # (docs/METHODS.md sec 5: ~1 % of a difference signal): it must miss the 1e-3 target
     assert np.abs(nearest - exact).max() > 1e-3 * scale
 
 

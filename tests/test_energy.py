@@ -11,7 +11,7 @@ from movieproc.stages import integrate
 
 
 def test_planar_resonance_against_a_hand_computed_value():
-    # METHODS.md sec. 7 (Huang & Kim, PRST-AB 10, 034801 (2007)): lambda = lambda_u / (2 gamma^2) (1 + K^2 / 2).
+    # docs/METHODS.md sec. 7 (Huang & Kim, PRST-AB 10, 034801 (2007)): lambda = lambda_u / (2 gamma^2) (1 + K^2 / 2).
     # By hand: gamma = 14 GeV / 0.51099895 MeV (m_e c^2, CODATA via scipy.constants) = 27397.32;
     # lambda = 30 mm / (2 * 27397.32^2) * (1 + 3.5^2 / 2) = 1.423836 Å;
     # E = h c / lambda = 12.398420 keV Å / 1.423836 Å = 8.707756 keV.
@@ -22,7 +22,7 @@ def test_planar_resonance_against_a_hand_computed_value():
 
 
 def test_helical_resonance_against_a_hand_computed_value():
-    # Helical: lambda = lambda_u / (2 gamma^2) (1 + K^2) (METHODS.md sec. 7).
+    # Helical: lambda = lambda_u / (2 gamma^2) (1 + K^2) (docs/METHODS.md sec. 7).
     # gamma = 8 GeV / 0.51099895 MeV = 15655.61; lambda = 26 mm / (2 * 15655.61^2) * 2.44 = 1.294176 Å;
     # E = 12.398420 / 1.294176 = 9.580168 keV.
     assert energy.resonance_energy(8.0, 26.0, 1.2, "helical") == pytest.approx(9.580168, rel=2e-7)

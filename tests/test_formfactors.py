@@ -22,13 +22,13 @@ def hubbell_f(z, s):
 @pytest.mark.parametrize(
     "element, z, tol_low, tol_high",
     [
-        # METHODS.md sec 5: the two tables agree within ~0.4 % for light elements; carbon's
+        # docs/METHODS.md sec 5: the two tables agree within ~0.4 % for light elements; carbon's
         # 2p valence region (s ~ 0.2) differs by up to 0.6 % between the two Hartree-Fock
         # calculations, so 1 % over the whole range for C, N, O.
         ("C", 6, 0.01, 0.01),
         ("N", 7, 0.01, 0.01),
         ("O", 8, 0.01, 0.01),
-        # METHODS.md sec 5: heavy atoms within ~1 % up to s = 0.5 and a few % at s = 1-2
+        # docs/METHODS.md sec 5: heavy atoms within ~1 % up to s = 0.5 and a few % at s = 1-2
         # (relativistic Dirac-Fock inner shells in Waasmaier-Kirfel vs non-relativistic
         # Hartree-Fock in Hubbell's tables).
         ("Fe", 26, 0.01, 0.03),
@@ -50,7 +50,7 @@ def test_f0_hydrogen_against_hubbell_absolute():
 
 
 def test_hydrogen_free_atom_closed_form():
-    # closed form, METHODS.md sec 5: f = [1 + (q a0 / 2)^2]^-2, a0 from scipy.constants
+    # closed form, docs/METHODS.md sec 5: f = [1 + (q a0 / 2)^2]^-2, a0 from scipy.constants
     q = np.linspace(0.0, 4 * np.pi * 6.0, 500)
     exact = (1.0 + (q * A0 / 2.0) ** 2) ** -2
     # tolerance 1e-3 e: the Waasmaier-Kirfel fit's residual scale for H (measured 4e-4)
@@ -118,7 +118,7 @@ def test_q_range_checked():
 @pytest.mark.parametrize(
     "element, z, below, edge_energy",
     [
-        ("Fe", 26, (6.5, 6.9), 7.112),  # Fe K edge 7.112 keV (METHODS.md sec 5)
+        ("Fe", 26, (6.5, 6.9), 7.112),  # Fe K edge 7.112 keV (docs/METHODS.md sec 5)
         ("Ir", 77, (10.8, 11.0), 11.215),  # Ir L3 edge 11.215 keV, from memory
     ],
 )
@@ -192,7 +192,7 @@ def test_incoherent_limits():
 
 
 def test_dummy_atom_closed_form():
-    # closed form, METHODS.md sec 5 / Fraser, MacRae & Suzuki 1978:
+    # closed form, docs/METHODS.md sec 5 / Fraser, MacRae & Suzuki 1978:
     # g(q) = rho0 V exp(-V^(2/3) q^2 / (4 pi)), V = 4/3 pi r_vdW^3
     from ase.data.vdw_alvarez import vdw_radii
 
@@ -200,7 +200,7 @@ def test_dummy_atom_closed_form():
     v = 4 / 3 * np.pi * vdw_radii[8] ** 3
     np.testing.assert_allclose(ff.dummy_form_factor("O", q, 0.334),
                                0.334 * v * np.exp(-v ** (2 / 3) * q**2 / (4 * np.pi)), rtol=1e-12)
-    # 1 g/cm^3 of water: 10 e per 18.015 g/mol -> 0.334 e/Å^3 (METHODS.md sec 5)
+    # 1 g/cm^3 of water: 10 e per 18.015 g/mol -> 0.334 e/Å^3 (docs/METHODS.md sec 5)
     assert ff.WATER_ELECTRON_DENSITY == pytest.approx(0.334, rel=2e-3)
 
 

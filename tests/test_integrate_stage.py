@@ -268,7 +268,7 @@ def test_sectors_of_an_aligned_pattern_follow_p2(tmp_path):
     hc = 12.398419843320026  # keV Å, from memory (h c = 1239.84198 eV nm)
     cos2 = 1.0 - (q * hc / 12.0 / (4 * np.pi)) ** 2
     phi = np.deg2rad(group["sector"][...])[:, None]
-    at_centre = _p2(np.sqrt(cos2) * np.cos(phi))  # P2 at each sector centre (METHODS.md sec 3)
+    at_centre = _p2(np.sqrt(cos2) * np.cos(phi))  # P2 at each sector centre (docs/METHODS.md sec 3)
     ring = 0.75 * cos2 - 0.5  # P2 averaged over a whole ring: <cos^2 phi> = 1/2
     # A sector's mean differs from the sector-free mean I0 + ring I2 as P2 at its centre does,
     # its cos(2 phi) part averaged over the 90-degree sector: sin(pi/2) / (pi/2) = 2/pi.

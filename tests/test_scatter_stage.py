@@ -44,7 +44,7 @@ def test_trajectory_curves_match_exact_per_frame():
     pos, _ = trajectory(12)
     got = model.trajectory_curves(Q, pos, ELEMENTS, num_workers=2, frames_per_task=5)
     exact = np.array([D.debye(Q, p, ELEMENTS) for p in pos])
-    # METHODS.md sec 5: linear sharing at dr = 0.01 Å keeps errors ~1e-5 of S; require 1e-4
+    # docs/METHODS.md sec 5: linear sharing at dr = 0.01 Å keeps errors ~1e-5 of S; require 1e-4
     assert np.abs(got - exact).max() < 1e-4 * np.abs(exact).max()
     sync = model.trajectory_curves(Q, pos, ELEMENTS, scheduler="synchronous")
     np.testing.assert_allclose(got, sync, rtol=1e-12, atol=1e-9)  # same arithmetic, any split
