@@ -33,7 +33,7 @@ SCENARIO = ROOT / "demo_data" / "scenario.yaml"
 # ------------------------------------------------------------------ small run files
 
 def run_datasets(n=240, nq=40, seed=0, off_every=3):
-    """Datasets of a small, valid curves-mode run file (input contract, DESIGN.md section 4).
+    """Datasets of a small, valid curves-mode run file (input contract, docs/DESIGN.md section 4).
 
     Positive curves near 100 with 1 % noise, every ``off_every``-th shot pump-off, timing
     edges near 480 px, a few stage positions between -0.5 and 1 ps.

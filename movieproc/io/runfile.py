@@ -3,7 +3,7 @@
 A run is one or more HDF5 files; shots are concatenated in file-name order.
 Per-shot datasets live under ``shots/`` and share one length N per file. The
 detector data are either ``frames`` (N, ny, nx) or pre-integrated ``curves``
-(N, nq) with their ``q`` axis (nq,). See DESIGN.md section 4.
+(N, nq) with their ``q`` axis (nq,). See docs/DESIGN.md section 4.
 """
 
 from __future__ import annotations

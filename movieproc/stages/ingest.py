@@ -23,7 +23,7 @@ def run(files, out, config: dict):
     Parameters
     ----------
     files : list of str
-        Run files (HDF5, input contract of DESIGN.md section 4).
+        Run files (HDF5, input contract of docs/DESIGN.md section 4).
     out : path
         Shots store to write (zarr).
     config : dict

@@ -207,7 +207,7 @@ def run(files, out, detector: dict, compute: dict) -> dict:
     Parameters
     ----------
     files : list of str or Path
-        Run files (HDF5, frames mode; DESIGN.md section 4).
+        Run files (HDF5, frames mode; docs/DESIGN.md section 4).
     out : path
         Shots store to write (zarr), replaced atomically.
     detector : dict
