@@ -241,3 +241,12 @@ def test_fit_errors_name_the_config_keys(reduced):
         _analyze(reduced, "rep.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[10.0, 10.0]")
     with pytest.raises(ConfigError, match="model.photon_energy_kev"):
         _config(reduced, "model.anomalous=true")
+
+
+def test_energy_nuisance_term(reduced):
+    # the demo curves carry no photon-energy mismatch: the extra term changes the fit by
+    # less than its errors (scenario truth, demo_data/scenario.yaml: alpha 0.15)
+    a = _analyze(reduced, "energy.zarr", "solvent.energy_term=true")
+    assert "energy" in a.attrs["solvent_terms"]
+    p = a.attrs["fit_parameters"]["alpha"]
+    assert abs(p["value"] - 0.15) < 3 * p["error"]

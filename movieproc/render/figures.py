@@ -158,7 +158,7 @@ def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, so
         ax = axes[i]
         i += 1
         for j, name in enumerate(terms):
-            if name == "normalization":
+            if name in ("normalization", "energy"):  # nuisance terms
                 continue
             e = None if solvent_err is None else solvent_err[:, j]
             ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=name)

@@ -33,7 +33,7 @@ from ..fitting.models import SpeciesModel, TrajectoryModel
 from ..io import store
 from ..scattering import geometry, realspace
 from ..signals import scaling, svd
-from ..signals.solvent import estimate_heating_curve, fit_solvent
+from ..signals.solvent import dS_dlnq, estimate_heating_curve, fit_solvent
 from .common import Warnings, now
 
 log = logging.getLogger("movieproc.analyze")
@@ -126,9 +126,15 @@ def run(binned_path, models_path, out, config: dict):
                          "its coefficient is in arbitrary units, not K")
         else:
             warnings.add("no solvent differentials (solvent.differentials) nor estimate window: no heating term fitted")
+    reference = np.nanmean(off_mean[use], axis=0) * factor
     if config["differences"]["normalization"] != "none":
         names.append("normalization")
-        curves.append(np.nanmean(off_mean[use], axis=0) * factor)
+        curves.append(reference)
+    if scfg["energy_term"]:
+        # a photon-energy mismatch between pump-on and reference shots moves the curve in q:
+        # dS ~ -(dS/d ln q) dE/E, fitted per delay as a nuisance term
+        names.append("energy")
+        curves.append(dS_dlnq(q, reference))
     basis = np.array(curves) if curves else None
 
     result = {"names": names, "units": units, "factor": factor, "use": use,
@@ -157,7 +163,7 @@ def run(binned_path, models_path, out, config: dict):
         fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread,
                               None if boot is None else boot[:, use])
     if fit_res is not None and fcfg["mode"] == "species" and fcfg["species_curves"] == "free" and \
-            any(n != "normalization" for n in names):
+            any(n not in ("normalization", "energy") for n in names):
         warnings.add("species fit with free curves: the split between the species curves and the per-delay solvent "
                      "terms is a convention (curves carry no solvent-shaped part), so solvent_coef and solute are "
                      "not determined by the data alone")
@@ -177,7 +183,7 @@ def run(binned_path, models_path, out, config: dict):
             coef, coef_err, solute = sf.coef, sf.coef_err, sf.solute
             for w in sf.warnings:
                 warnings.add(w)
-            if fcfg["mode"] == "none" and any(n != "normalization" for n in names):
+            if fcfg["mode"] == "none" and any(n not in ("normalization", "energy") for n in names):
                 warnings.add("no solute model in the fit (fit.mode none): solvent coefficients absorb any solute "
                              "signal that resembles the solvent curves")
         else:

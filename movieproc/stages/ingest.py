@@ -39,8 +39,11 @@ def run(files, out, config: dict):
     table = runfile.read_table(info)
     log.info("run of %d shots in %d file(s), %d q points (%.3g-%.3g 1/Å)", info.n_shots, len(info.files),
              info.q.size, info.q[0], info.q[-1])
-    if "photon_energy" in table and not np.all(np.isfinite(table["photon_energy"])):
-        warnings.add("shots/photon_energy has non-finite values; the per-shot photon energy is not used in curves mode")
+    if "photon_energy" in table:
+        if not np.all(np.isfinite(table["photon_energy"])):
+            warnings.add("shots/photon_energy has non-finite values")
+        log.info("curves mode: shots/photon_energy is kept in the shot table but not used (pre-integrated curves are "
+                 "taken as already on their common q axis); solvent.energy_term can absorb a residual mismatch")
     attrs = {
         "mode": "curves", "files": [str(f) for f in info.files],
         "checksums": {str(f): shotstore.file_checksum(f) for f in info.files},
