@@ -4,6 +4,7 @@
     movieproc process   process given run files with the default config
     movieproc synth     write a synthetic run of the demo scenario
     movieproc summary   summarize run files or a movie
+    movieproc sign-check  which sign of the timing correction sharpens the onset
 
 Every config value can be overridden with ``--set dotted.key=value`` (repeat for
 several; values are parsed as YAML), e.g. ``--set binning.width_ps=0.1``.
@@ -77,6 +78,29 @@ def cmd_synth(args):
     print(f"process them with: movieproc process {' '.join(str(f) for f in files)}")
 
 
+def cmd_sign_check(args):
+    from .stages.delays import check_sign
+
+    config = mpconfig.load(args.config, args.overrides)
+    out = Path(config["output_dir"])
+    shots, sel = out / "shots.zarr", out / "selection.zarr"
+    if not (shots.exists() and sel.exists()):
+        from .errors import InputError
+
+        raise InputError(out, "no shots.zarr and selection.zarr", "a run processed up to the select stage "
+                         "(movieproc run with the same --config)")
+    r = check_sign(shots, sel, config, args.window)
+    print(f"onset 10-90 % width from {r['shots']} pump-on shots within {args.window} ps of time zero:")
+    print(f"  nominal delays:         {1000 * r['nominal']:7.1f} fs")
+    print(f"  correction sign +1:     {1000 * r['plus']:7.1f} fs")
+    print(f"  correction sign -1:     {1000 * r['minus']:7.1f} fs")
+    best = r["best"]
+    print(f"the onset is sharpest with timing.sign = {best:+d} (config has {config['timing']['sign']:+d})"
+          + ("" if best == config["timing"]["sign"] else ": set --set timing.sign=%d" % best))
+    if min(r["plus"], r["minus"]) > 0.8 * r["nominal"]:
+        print("warning: neither sign sharpens the onset much: check timing.calibration_fs and the edge units")
+
+
 def cmd_summary(args):
     from .summary import summarize_movie, summarize_run
 
@@ -114,6 +138,11 @@ def build_parser():
     p.add_argument("--files", type=int, default=2)
     p.add_argument("--mode", choices=["curves", "frames"], default="curves")
     p.set_defaults(func=cmd_synth)
+
+    p = sub.add_parser("sign-check", help="measure which sign of the timing correction sharpens the onset")
+    _add_config_args(p)
+    p.add_argument("--window", type=float, default=1.0, help="ps around time zero to use (default 1)")
+    p.set_defaults(func=cmd_sign_check)
 
     p = sub.add_parser("summary", help="summarize run files, or a movie store")
     p.add_argument("paths", nargs="+", help="run files (HDF5) or one movie.zarr")

@@ -250,3 +250,15 @@ def test_energy_nuisance_term(reduced):
     assert "energy" in a.attrs["solvent_terms"]
     p = a.attrs["fit_parameters"]["alpha"]
     assert abs(p["value"] - 0.15) < 3 * p["error"]
+
+
+def test_sign_check_on_the_run(reduced):
+    """The data say which timing-correction sign is right (the scenario's is -1)."""
+    from movieproc.stages.delays import check_sign
+
+    r = check_sign(reduced / "shots.zarr", reduced / "selection.zarr", _config(reduced))
+    # scenario (demo_data/scenario.yaml): 100 fs rms jitter, 12 fs timing-tool noise, 45 fs
+    # pulses. The right sign removes most of the jitter; the wrong one doubles it.
+    assert r["best"] == -1
+    assert r["minus"] < 0.7 * r["nominal"]
+    assert r["plus"] > 1.5 * r["nominal"]
