@@ -21,6 +21,9 @@ CONVENTIONS = {
     "delay": "ps; positive = probe after pump; corrected delay = stage_delay - time_zero + sign * timing correction",
     "q": "1/Å, q = 4 pi sin(theta) / lambda, 2 theta the scattering angle",
     "difference": "pump-on minus the mean of the k nearest pump-off shots, each curve normalized first",
+    "scales": "diff, diff_err, on_mean and off_mean are in normalized units (see their units attr); solute, model, "
+              "residual and solvent terms are in analysis_units (attrs): diff times absolute_scale_factor (attrs), "
+              "so compare diff * absolute_scale_factor with model",
 }
 
 
