@@ -15,6 +15,12 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
+from hypothesis import settings
+
+# Property tests draw the same examples on every run (reproducible CI); no per-example deadline
+# on a loaded 2-core machine.
+settings.register_profile("movieproc", derandomize=True, deadline=None)
+settings.load_profile("movieproc")
 
 # Snakemake 9 needs a writable cache folder; set it before anything imports snakemake.
 _CACHE = tempfile.mkdtemp(prefix="movieproc-xdg-cache-")
