@@ -92,6 +92,7 @@ def summarize_movie(path) -> str:
         if key in a:
             lines.append("fitted parameters: " + ", ".join(
                 f"{k} = {v['value']:.4g} ± {v['error']:.2g}"
+                + (f" {v['units']}" if v.get("units") not in (None, "", "1") else "")
                 + (f" (bootstrap ± {v['bootstrap_error']:.2g})" if "bootstrap_error" in v else "")
                 for k, v in a[key].items()))
             if not a.get("fit_converged", True):
