@@ -1,0 +1,561 @@
+"""Covariance between delay bins of the binned differences, and a fast bootstrap over shots.
+
+The mean difference of bin b (see :mod:`movieproc.signals.differences`) is a
+linear combination of independent shots,
+
+    D_b(q) = (1/n_b) sum_{i in b} on_i(q) - sum_j w_bj off_j(q),   w_bj = u_bj / (k n_b),
+
+with u_bj the number of the bin's pump-on shots that use pump-off shot j among
+their k references. Pump-on shots taken at one stage position spread over
+several delay bins when the timing jitter exceeds the bin width, and they share
+pump-off references, so the differences of neighbouring bins are correlated.
+With a per-shot noise variance s(q)^2 common to the shots involved,
+
+    Cov(D_b(q), D_c(q)) = s(q)^2 M_bc,   M_bc = sum_s a_bs a_cs,
+
+with a_bs the coefficient of shot s in D_b: :func:`bin_coefficient_overlap`
+gives M, :func:`bin_correlation` the correlation R, and the covariance used by
+the fits is the separable model ``err_b(q) err_c(q) R_bc`` with the per-bin
+errors of :func:`movieproc.signals.differences.bin_errors` (docs/covariance.md).
+:func:`whiten` decorrelates residuals along the delay axis with R.
+
+:func:`bootstrap_chunk` and :func:`bootstrap_replicates` are a Poisson bootstrap
+over shots that puts the replicate weights on per-bin weighted sums (matrix
+products) instead of re-running the reduction once per replicate.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import linalg, sparse
+
+__all__ = ["reference_use_counts", "bin_coefficient_overlap", "bin_correlation", "check_correlation",
+           "cholesky_correlation", "whiten", "decorrelate",
+           "bootstrap_weights", "BootstrapChunk", "BootstrapSums", "bootstrap_chunk", "bootstrap_replicates",
+           "replicate_correlation"]
+
+#: Smallest accepted ratio of the smallest to the largest squared Cholesky pivot of R:
+#: below it the whitened residual amplifies rounding errors by more than 1e5.
+MIN_PIVOT_RATIO = 1e-10
+
+#: Tolerance on R's symmetry and unit diagonal (R is computed in float64 from counts).
+CORRELATION_TOLERANCE = 1e-8
+
+#: Rows of the (replicate, shot) Poisson weights drawn at once (bounds the int64 temporary).
+WEIGHT_ROWS_PER_DRAW = 16
+
+
+# ----------------------------------------------------------------------------- analytic covariance
+
+def _check_bins_refs(bin_index, refs, nbins):
+    bin_index = np.asarray(bin_index)
+    refs = np.asarray(refs)
+    if bin_index.ndim != 1 or not np.issubdtype(bin_index.dtype, np.integer):
+        raise ValueError(f"bin_index must be a 1-D integer array, got shape {bin_index.shape} {bin_index.dtype}")
+    if refs.ndim != 2 or refs.shape[0] != bin_index.size or not np.issubdtype(refs.dtype, np.integer):
+        raise ValueError(f"refs must be an integer array (n_on, k) with n_on = {bin_index.size} "
+                         f"(one row per pump-on shot), got shape {refs.shape} {refs.dtype}")
+    if refs.shape[1] < 1:
+        raise ValueError("refs must hold at least one reference per pump-on shot (k >= 1)")
+    if int(nbins) < 1 or (bin_index.size and int(bin_index.max()) >= int(nbins)):
+        raise ValueError(f"nbins = {nbins} must be positive and above every bin_index "
+                         f"(largest {int(bin_index.max()) if bin_index.size else None})")
+    if refs.size and int(refs.min()) < 0:
+        raise ValueError("refs must be shot indices (>= 0)")
+    return bin_index.astype(np.int64), refs.astype(np.int64), int(nbins)
+
+
+def reference_use_counts(bin_index, refs, nbins):
+    """Sparse matrix of reference uses: U[b, j] = u_bj, pump-on shots of bin b using off shot j.
+
+    Parameters
+    ----------
+    bin_index : array_like (n_on,) int
+        Bin of each pump-on shot (-1: not binned, ignored).
+    refs : array_like (n_on, k) int
+        Run indices of each pump-on shot's references
+        (:func:`movieproc.signals.differences.nearest_references`).
+    nbins : int
+        Number of delay bins.
+
+    Returns
+    -------
+    U : scipy.sparse.csr_matrix (nbins, n_ref) float64
+        Use counts; column c belongs to reference shot ``ref_shots[c]``.
+    ref_shots : ndarray (n_ref,) int64
+        The distinct reference shots used by binned pump-on shots, increasing.
+    """
+    bin_index, refs, nbins = _check_bins_refs(bin_index, refs, nbins)
+    k = refs.shape[1]
+    ok = bin_index >= 0
+    b = np.repeat(bin_index[ok], k)
+    ref_shots, col = np.unique(refs[ok].ravel(), return_inverse=True)
+    U = sparse.csr_matrix((np.ones(b.size), (b, col.ravel())), shape=(nbins, ref_shots.size))
+    U.sum_duplicates()
+    return U, ref_shots
+
+
+def bin_coefficient_overlap(bin_index, refs, nbins):
+    """Overlap M_bc = sum_s a_bs a_cs of the shot coefficients of the bin mean differences.
+
+    D_b = sum_s a_bs x_s over all shots s, with ``a_bs = 1/n_b`` for the n_b
+    pump-on shots of bin b (0 in every other bin) and ``a_bj = -u_bj / (k n_b)``
+    for pump-off shot j used u_bj times as a reference by the bin's pump-on
+    shots. If every shot has the same noise variance s^2 and shots are
+    independent, ``Cov(D_b, D_c) = s^2 M_bc`` exactly. Here
+
+        M_bc = delta_bc / n_b + sum_j u_bj u_cj / (k^2 n_b n_c),
+
+    so ``M_bb = (1 + shared_b) / n_b`` with ``shared_b`` from
+    :func:`movieproc.signals.differences.shared_reference_factor`; the
+    off-diagonal terms come only from references shared between bins. Pump-on
+    and pump-off shots are distinct shots (a pump-on shot is never a reference).
+
+    Parameters
+    ----------
+    bin_index : array_like (n_on,) int
+        Bin of each pump-on shot (-1: not binned, ignored).
+    refs : array_like (n_on, k) int
+        Run indices of each pump-on shot's k references.
+    nbins : int
+        Number of delay bins.
+
+    Returns
+    -------
+    ndarray (nbins, nbins) float64
+        Symmetric, positive semi-definite; rows and columns of empty bins are 0
+        (an empty bin has no mean). Units: 1/shots (variance of a bin mean per
+        unit per-shot variance).
+
+    Notes
+    -----
+    Memory is linear in the number of shots: the (bin, reference) use counts
+    are a sparse matrix U and ``M = diag(1/n) + D U U^T D / k^2`` with
+    ``D = diag(1/n)``.
+    """
+    bin_index, refs, nbins = _check_bins_refs(bin_index, refs, nbins)
+    k = refs.shape[1]
+    U, _ = reference_use_counts(bin_index, refs, nbins)
+    n = np.bincount(bin_index[bin_index >= 0], minlength=nbins).astype(float)
+    inv_n = np.where(n > 0, 1.0 / np.maximum(n, 1.0), 0.0)
+    shared = np.asarray((U @ U.T).todense(), dtype=float)
+    return np.diag(inv_n) + shared * np.outer(inv_n, inv_n) / (k * k)
+
+
+def bin_correlation(M):
+    """Correlation R_bc = M_bc / sqrt(M_bb M_cc) of the bin differences.
+
+    Parameters
+    ----------
+    M : array_like (nbins, nbins)
+        From :func:`bin_coefficient_overlap`.
+
+    Returns
+    -------
+    ndarray (nbins, nbins) float64
+        Unit diagonal. An empty bin (``M_bb == 0``) gets an identity row and
+        column: it carries no data, and with a unit diagonal R stays positive
+        definite so it can be whitened with the empty bin masked or not.
+    """
+    M = np.asarray(M, float)
+    if M.ndim != 2 or M.shape[0] != M.shape[1]:
+        raise ValueError(f"M must be square (nbins, nbins), got shape {M.shape}")
+    d = np.diag(M).copy()
+    empty = ~(d > 0)
+    d[empty] = 1.0
+    s = np.sqrt(d)
+    R = M / np.outer(s, s)
+    R[empty, :] = 0.0
+    R[:, empty] = 0.0
+    R[np.diag_indices_from(R)] = 1.0
+    return R
+
+
+# ----------------------------------------------------------------------------- whitening
+
+def check_correlation(R, nbins):
+    """R as float64 after checking it is a finite, symmetric (nbins, nbins) matrix with unit diagonal.
+
+    Raises
+    ------
+    ValueError
+        Naming ``R`` and what is wrong with it.
+    """
+    R = np.asarray(R, float)
+    if R.shape != (nbins, nbins):
+        raise ValueError(f"R must be the ({nbins}, {nbins}) correlation of the delay bins, got shape {R.shape}")
+    if not np.all(np.isfinite(R)):
+        raise ValueError("R (bin correlation) has non-finite entries")
+    if not np.allclose(R, R.T, rtol=0.0, atol=CORRELATION_TOLERANCE):
+        raise ValueError("R (bin correlation) is not symmetric")
+    if not np.allclose(np.diag(R), 1.0, rtol=0.0, atol=CORRELATION_TOLERANCE):
+        raise ValueError("R must be a correlation matrix with unit diagonal (use bin_correlation)")
+    return R
+
+
+def cholesky_correlation(R):
+    """Lower Cholesky factor L of R = L L^T, refusing singular or indefinite R.
+
+    Parameters
+    ----------
+    R : array_like (m, m)
+        Correlation matrix (unit diagonal).
+
+    Returns
+    -------
+    ndarray (m, m) float64, lower triangular.
+
+    Raises
+    ------
+    ValueError
+        If R is not positive definite, or so near singular that the smallest
+        squared pivot is below ``MIN_PIVOT_RATIO`` (bins whose differences are
+        nearly the same combination of shots, e.g. bins of one or two shots that
+        share all their references: too few references).
+    """
+    R = np.asarray(R, float)
+    try:
+        L = np.linalg.cholesky(R)
+    except np.linalg.LinAlgError:
+        raise ValueError("R (bin correlation) is not positive definite: some bins' differences are linear "
+                         "combinations of others' (bins sharing all their references; too few references "
+                         "or too few shots per bin)") from None
+    piv = np.diag(L) ** 2
+    if piv.size and piv.min() < MIN_PIVOT_RATIO * piv.max():
+        worst = int(np.argmin(piv))
+        raise ValueError(f"R (bin correlation) is nearly singular (squared pivot {piv[worst]:.2e} at bin row "
+                         f"{worst}): bins share nearly all their references; use more references per shot "
+                         "or wider bins")
+    return L
+
+
+def decorrelate(z, valid, R):
+    """Apply L^-1 along the delay axis (R = L L^T) to standardized values, skipping masked ones.
+
+    Parameters
+    ----------
+    z : array_like (nbins, m)
+        Values already divided by their standard errors (residuals, or Jacobian
+        columns laid side by side as ``m = nq * p``).
+    valid : array_like (nbins, m) bool
+        Entries that take part; each column is whitened with R restricted to its
+        valid bins (columns sharing a pattern share one Cholesky factor).
+    R : array_like (nbins, nbins)
+        Correlation along the delay axis (unit diagonal).
+
+    Returns
+    -------
+    ndarray (nbins, m) float64
+        Whitened values at the valid entries, 0 elsewhere. Within a column the
+        k-th whitened value sits at the k-th valid bin.
+
+    Raises
+    ------
+    ValueError
+        If R (restricted to the valid bins of a column) is singular or not
+        positive definite, see :func:`cholesky_correlation`.
+    """
+    z = np.asarray(z, float)
+    valid = np.asarray(valid, bool)
+    if z.ndim != 2 or valid.shape != z.shape:
+        raise ValueError(f"z and valid must share a 2-D shape (nbins, m), got {z.shape} and {valid.shape}")
+    R = check_correlation(R, z.shape[0])
+    out = np.zeros(z.shape)
+    if z.size == 0:
+        return out
+    patterns, which = np.unique(valid.T, axis=0, return_inverse=True)
+    which = np.asarray(which).ravel()
+    for i, rows in enumerate(patterns):
+        if not rows.any():
+            continue
+        cols = np.flatnonzero(which == i)
+        L = cholesky_correlation(R[np.ix_(rows, rows)])
+        out[np.ix_(rows, cols)] = linalg.solve_triangular(L, z[np.ix_(rows, cols)], lower=True, check_finite=False)
+    return out
+
+
+def whiten(residual, error, R):
+    """Whitened residuals L^-1 (residual / error) along the delay axis, R = L L^T.
+
+    Under the separable model Cov(D_b(q), D_c(q)) = err_b(q) err_c(q) R_bc the
+    whitened values of each q point are independent with unit variance, so
+    their sum of squares is the generalized chi2 (and a least-squares fit of
+    them a generalized least-squares fit).
+
+    Parameters
+    ----------
+    residual : array_like (nbins, nq)
+        Data minus model (data units).
+    error : array_like (nbins, nq)
+        Standard errors of the data (same units); entries with a non-finite or
+        non-positive error, or a non-finite residual (empty or masked bins) are
+        left out.
+    R : array_like (nbins, nbins)
+        Bin correlation, :func:`bin_correlation`.
+
+    Returns
+    -------
+    ndarray (nbins, nq) float64
+        Whitened residuals, dimensionless; 0 at the left-out entries.
+
+    Raises
+    ------
+    ValueError
+        If R is singular or not positive definite (e.g. too few references).
+    """
+    residual = np.asarray(residual, float)
+    error = np.asarray(error, float)
+    if residual.ndim != 2 or error.shape != residual.shape:
+        raise ValueError(f"residual and error must share a shape (nbins, nq), got {residual.shape} "
+                         f"and {error.shape}")
+    valid = np.isfinite(residual) & np.isfinite(error) & (error > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.where(valid, residual / np.where(valid, error, 1.0), 0.0)
+    return decorrelate(z, valid, R)
+
+
+# ----------------------------------------------------------------------------- bootstrap
+
+def bootstrap_weights(rng, n_boot, n_shots):
+    """Poisson(1) weight of every shot in every replicate, drawn once for the whole run.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        Seeded generator.
+    n_boot : int
+        Number of replicates.
+    n_shots : int
+        Shots in the run (the weights are indexed by run index, so a reference
+        shared by pump-on shots of different chunks keeps one weight).
+
+    Returns
+    -------
+    ndarray (n_boot, n_shots) uint8
+    """
+    if not isinstance(rng, np.random.Generator):
+        raise TypeError(f"rng must be a seeded numpy.random.Generator, got {type(rng).__name__}")
+    out = np.empty((int(n_boot), int(n_shots)), np.uint8)
+    for a in range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW):
+        rows = out[a:a + WEIGHT_ROWS_PER_DRAW]
+        # Poisson(1) above 255 has probability ~1e-507: the clip never acts.
+        rows[:] = np.minimum(rng.poisson(1.0, rows.shape), 255)
+    return out
+
+
+@dataclass
+class BootstrapChunk:
+    """One chunk's contribution to the bootstrap sums, for the bins the chunk touches.
+
+    Attributes
+    ----------
+    bins : ndarray (m,) int64
+        Bins touched by the chunk.
+    on_sum : ndarray (n_boot, m, nq) float64
+        sum_i w_i^r on_i(q) over the chunk's pump-on shots of each bin.
+    on_weight : ndarray (n_boot, m) float64
+        sum_i w_i^r.
+    off_sum : ndarray (n_boot, m, nq) float64
+        sum_j w_j^r u_bj off_j(q), u_bj counting the chunk's uses only.
+    off_weight : ndarray (n_boot, m) float64
+        sum_j w_j^r u_bj.
+    """
+
+    bins: np.ndarray
+    on_sum: np.ndarray
+    on_weight: np.ndarray
+    off_sum: np.ndarray
+    off_weight: np.ndarray
+
+
+@dataclass
+class BootstrapSums:
+    """Running bootstrap sums over the whole run (float64); see :class:`BootstrapChunk`.
+
+    Attributes
+    ----------
+    on_sum, off_sum : ndarray (n_boot, nbins, nq) float64
+    on_weight, off_weight : ndarray (n_boot, nbins) float64
+    """
+
+    on_sum: np.ndarray
+    on_weight: np.ndarray
+    off_sum: np.ndarray
+    off_weight: np.ndarray
+
+    @classmethod
+    def zeros(cls, n_boot, nbins, nq):
+        """Empty sums for ``n_boot`` replicates, ``nbins`` bins, ``nq`` q points."""
+        return cls(np.zeros((n_boot, nbins, nq)), np.zeros((n_boot, nbins)),
+                   np.zeros((n_boot, nbins, nq)), np.zeros((n_boot, nbins)))
+
+    def add(self, part: BootstrapChunk):
+        """Add one chunk's contribution in place; returns self."""
+        b = part.bins
+        self.on_sum[:, b] += part.on_sum
+        self.on_weight[:, b] += part.on_weight
+        self.off_sum[:, b] += part.off_sum
+        self.off_weight[:, b] += part.off_weight
+        return self
+
+
+def _weighted_sums(W, X):
+    """(W @ X, W.sum(1)) in float64, with the product done in X's precision on centred rows.
+
+    The rows of X are centred on their mean c before the product and (sum W) c
+    is added back in float64, so float32 rounding applies to the deviations
+    only (shot-to-shot noise), not to the curves themselves.
+    """
+    dt = np.float64 if X.dtype == np.float64 else np.float32
+    X = X.astype(dt, copy=False)
+    c = X.mean(axis=0, dtype=np.float64).astype(dt)
+    X -= c
+    Wd = W.astype(dt)
+    wsum = W.sum(axis=1, dtype=np.float64)
+    return (Wd @ X).astype(np.float64) + np.outer(wsum, c.astype(np.float64)), wsum
+
+
+def _check_chunk(weights, on_shot, on_bin, refs, rows, curves):
+    weights = np.asarray(weights)
+    on_shot = np.asarray(on_shot, np.int64)
+    on_bin = np.asarray(on_bin, np.int64)
+    refs = np.asarray(refs, np.int64)
+    rows = np.asarray(rows, np.int64)
+    curves = np.asarray(curves)
+    if weights.ndim != 2:
+        raise ValueError(f"weights must be (n_boot, n_shots), got shape {weights.shape}")
+    if on_bin.shape != on_shot.shape or on_shot.ndim != 1:
+        raise ValueError(f"on_shot and on_bin must be 1-D of one length, got {on_shot.shape} and {on_bin.shape}")
+    if refs.ndim != 2 or refs.shape[0] != on_shot.size:
+        raise ValueError(f"refs must be (n_on, k) with n_on = {on_shot.size}, got shape {refs.shape}")
+    if curves.ndim != 2 or curves.shape[0] != rows.size:
+        raise ValueError(f"curves must be (len(rows), nq) = ({rows.size}, nq), got shape {curves.shape}")
+    if rows.size > 1 and np.any(np.diff(rows) <= 0):
+        raise ValueError("rows must be strictly increasing run indices")
+    return weights, on_shot, on_bin, refs, rows, curves
+
+
+def _positions(rows, shots):
+    pos = np.searchsorted(rows, shots)
+    if np.any(pos >= rows.size) or np.any(rows[np.minimum(pos, rows.size - 1)] != shots):
+        raise ValueError("rows (the run indices of curves) lack some pump-on or reference shots of the chunk")
+    return pos
+
+
+def bootstrap_chunk(weights, on_shot, on_bin, refs, rows, curves) -> BootstrapChunk:
+    """Bootstrap sums of one chunk of pump-on shots, by grouped matrix products.
+
+    For every bin b touched by the chunk and every replicate r (all replicates
+    at once, by BLAS): ``W[:, on shots of b] @ X[on shots of b]`` and
+    ``(W[:, refs of b] * u_b) @ X[refs of b]``, with u_b the number of uses of
+    each distinct reference by the chunk's pump-on shots of bin b. The sums are
+    additive over chunks (a reference used by shots of two chunks contributes
+    its uses in each), so splitting the run into chunks changes nothing.
+
+    Parameters
+    ----------
+    weights : ndarray (n_boot, n_shots) uint8
+        From :func:`bootstrap_weights`, indexed by run index.
+    on_shot : array_like (n,) int
+        Run indices of the chunk's pump-on shots.
+    on_bin : array_like (n,) int
+        Their bins (-1: not binned, skipped).
+    refs : array_like (n, k) int
+        Run indices of their references.
+    rows : array_like (m,) int
+        Increasing run indices of the rows of ``curves``; must include every
+        ``on_shot`` and ``refs`` entry of binned shots.
+    curves : array_like (m, nq) float32 or float64
+        Normalized curves of those shots.
+
+    Returns
+    -------
+    BootstrapChunk
+    """
+    weights, on_shot, on_bin, refs, rows, curves = _check_chunk(weights, on_shot, on_bin, refs, rows, curves)
+    n_boot, nq = weights.shape[0], curves.shape[1]
+    ok = on_bin >= 0
+    order = np.argsort(on_bin[ok], kind="stable")
+    bin_s, shot_s, refs_s = on_bin[ok][order], on_shot[ok][order], refs[ok][order]
+    bins, starts = np.unique(bin_s, return_index=True)
+    stops = np.append(starts[1:], bin_s.size)
+    pos_on = _positions(rows, shot_s)
+    part = BootstrapChunk(bins.astype(np.int64), np.zeros((n_boot, bins.size, nq)), np.zeros((n_boot, bins.size)),
+                          np.zeros((n_boot, bins.size, nq)), np.zeros((n_boot, bins.size)))
+    for t, (a, b) in enumerate(zip(starts, stops, strict=True)):
+        part.on_sum[:, t], part.on_weight[:, t] = _weighted_sums(weights[:, shot_s[a:b]], curves[pos_on[a:b]])
+        ref, uses = np.unique(refs_s[a:b], return_counts=True)
+        w_ref = weights[:, ref].astype(np.float32) * uses.astype(np.float32)
+        part.off_sum[:, t], part.off_weight[:, t] = _weighted_sums(w_ref, curves[_positions(rows, ref)])
+    return part
+
+
+def bootstrap_replicates(sums: BootstrapSums):
+    """Bin differences of every bootstrap replicate (ratio estimator).
+
+    ``D_b^r = sum_i w_i^r on_i / sum_i w_i^r - sum_j w_j^r u_bj off_j / sum_j w_j^r u_bj``
+    with Poisson(1) weights w^r per shot (pump-on and pump-off alike, one
+    weight per shot for the whole run). At unit weights it is exactly the bin
+    difference of the reduction. Linearized, its variance over replicates is
+    ``sum_s a_bs a_cs (x_s - mean)^2``, the empirical counterpart of
+    ``s^2 M_bc`` (:func:`bin_coefficient_overlap`), between-bin covariance
+    from shared references included.
+
+    It differs from re-averaging each pump-on shot's reference with the
+    replicate weights (``on_i - sum_j w_j off_j / sum_j w_j`` over its k
+    references, then a w_i-weighted mean): there an off shot's weight in a
+    bin depends on the weights of the pump-on shots using it and on its
+    co-references', and a shot whose k references all drew 0 needs a fallback.
+    Here the pump-on and pump-off sums of a bin are normalized separately, the
+    use counts u_bj stay fixed, and no fallback is needed; the two agree to
+    first order in the weight fluctuations.
+
+    Parameters
+    ----------
+    sums : BootstrapSums
+        All chunks added.
+
+    Returns
+    -------
+    ndarray (n_boot, nbins, nq) float64
+        NaN for a bin whose pump-on (or reference) weights are all 0 in a
+        replicate (empty bins; rare in bins of a few shots).
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        on = np.where(sums.on_weight[..., None] > 0, sums.on_sum / sums.on_weight[..., None], np.nan)
+        off = np.where(sums.off_weight[..., None] > 0, sums.off_sum / sums.off_weight[..., None], np.nan)
+    return on - off
+
+
+def replicate_correlation(replicates):
+    """Between-bin correlation of bootstrap replicates, averaged over q points.
+
+    Parameters
+    ----------
+    replicates : array_like (n_boot, nbins, nq)
+        From :func:`bootstrap_replicates`.
+
+    Returns
+    -------
+    ndarray (nbins, nbins) float64
+        Mean over q of the per-q correlation matrix of the replicates (a
+        replicate that is NaN in a bin is left out of that bin's sums); NaN
+        where a bin has fewer than two finite replicates. For comparison with
+        :func:`bin_correlation`.
+    """
+    x = np.asarray(replicates, float)
+    if x.ndim != 3 or x.shape[2] < 1:
+        raise ValueError(f"replicates must be (n_boot, nbins, nq) with nq >= 1, got shape {x.shape}")
+    ok = np.isfinite(x)
+    n = ok.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(ok, x, 0.0).sum(axis=0) / n
+        dev = np.where(ok, x - mean, 0.0)
+        pairs = np.einsum("rbq,rcq->qbc", ok.astype(float), ok.astype(float))
+        cov = np.einsum("rbq,rcq->qbc", dev, dev) / np.where(pairs > 1, pairs - 1.0, np.nan)
+        sd = np.sqrt(np.einsum("qbb->qb", cov))
+        corr = cov / (sd[:, :, None] * sd[:, None, :])
+        finite = np.isfinite(corr)
+        return np.where(finite, corr, 0.0).sum(axis=0) / np.where(finite.any(axis=0), finite.sum(axis=0), np.nan)
