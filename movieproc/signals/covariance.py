@@ -352,14 +352,15 @@ class BootstrapChunk:
     Attributes
     ----------
     bins : ndarray (m,) int64
-        Bins touched by the chunk.
-    on_sum : ndarray (n_boot, m, nq) float64
-        sum_i w_i^r on_i(q) over the chunk's pump-on shots of each bin.
-    on_weight : ndarray (n_boot, m) float64
+        Bins touched by the chunk (distinct).
+    on_sum : ndarray (m, n_boot, nq) float64
+        sum_i w_i^r on_i(q) over the chunk's pump-on shots of each bin
+        (bin-major, so one bin's block is contiguous).
+    on_weight : ndarray (m, n_boot) float64
         sum_i w_i^r.
-    off_sum : ndarray (n_boot, m, nq) float64
+    off_sum : ndarray (m, n_boot, nq) float64
         sum_j w_j^r u_bj off_j(q), u_bj counting the chunk's uses only.
-    off_weight : ndarray (n_boot, m) float64
+    off_weight : ndarray (m, n_boot) float64
         sum_j w_j^r u_bj.
     """
 
@@ -376,8 +377,8 @@ class BootstrapSums:
 
     Attributes
     ----------
-    on_sum, off_sum : ndarray (n_boot, nbins, nq) float64
-    on_weight, off_weight : ndarray (n_boot, nbins) float64
+    on_sum, off_sum : ndarray (nbins, n_boot, nq) float64
+    on_weight, off_weight : ndarray (nbins, n_boot) float64
     """
 
     on_sum: np.ndarray
@@ -388,33 +389,33 @@ class BootstrapSums:
     @classmethod
     def zeros(cls, n_boot, nbins, nq):
         """Empty sums for ``n_boot`` replicates, ``nbins`` bins, ``nq`` q points."""
-        return cls(np.zeros((n_boot, nbins, nq)), np.zeros((n_boot, nbins)),
-                   np.zeros((n_boot, nbins, nq)), np.zeros((n_boot, nbins)))
+        return cls(np.zeros((nbins, n_boot, nq)), np.zeros((nbins, n_boot)),
+                   np.zeros((nbins, n_boot, nq)), np.zeros((nbins, n_boot)))
 
     def add(self, part: BootstrapChunk):
-        """Add one chunk's contribution in place; returns self."""
-        b = part.bins
-        self.on_sum[:, b] += part.on_sum
-        self.on_weight[:, b] += part.on_weight
-        self.off_sum[:, b] += part.off_sum
-        self.off_weight[:, b] += part.off_weight
+        """Add one chunk's contribution in place (one contiguous block per bin); returns self."""
+        for t, b in enumerate(part.bins):
+            self.on_sum[b] += part.on_sum[t]
+            self.on_weight[b] += part.on_weight[t]
+            self.off_sum[b] += part.off_sum[t]
+            self.off_weight[b] += part.off_weight[t]
         return self
 
 
-def _weighted_sums(W, X):
-    """(W @ X, W.sum(1)) in float64, with the product done in X's precision on centred rows.
+def _weighted_sums(W, X, out, out_weight):
+    """out = W @ X and out_weight = W.sum(1) in float64, the product in X's precision on centred rows.
 
-    The rows of X are centred on their mean c before the product and (sum W) c
-    is added back in float64, so float32 rounding applies to the deviations
-    only (shot-to-shot noise), not to the curves themselves.
+    The rows of X (a scratch copy, modified) are centred on their mean c before
+    the product and (sum W) c is added back in float64, so float32 rounding
+    applies to the deviations only (shot-to-shot noise), not to the curves.
     """
     dt = np.float64 if X.dtype == np.float64 else np.float32
     X = X.astype(dt, copy=False)
     c = X.mean(axis=0, dtype=np.float64).astype(dt)
     X -= c
-    Wd = W.astype(dt)
-    wsum = W.sum(axis=1, dtype=np.float64)
-    return (Wd @ X).astype(np.float64) + np.outer(wsum, c.astype(np.float64)), wsum
+    out_weight[:] = W.sum(axis=1, dtype=np.float64)
+    out[:] = W.astype(dt) @ X
+    out += out_weight[:, None] * c.astype(np.float64)[None, :]
 
 
 def _check_chunk(weights, on_shot, on_bin, refs, rows, curves):
@@ -482,13 +483,13 @@ def bootstrap_chunk(weights, on_shot, on_bin, refs, rows, curves) -> BootstrapCh
     bins, starts = np.unique(bin_s, return_index=True)
     stops = np.append(starts[1:], bin_s.size)
     pos_on = _positions(rows, shot_s)
-    part = BootstrapChunk(bins.astype(np.int64), np.zeros((n_boot, bins.size, nq)), np.zeros((n_boot, bins.size)),
-                          np.zeros((n_boot, bins.size, nq)), np.zeros((n_boot, bins.size)))
+    part = BootstrapChunk(bins.astype(np.int64), np.empty((bins.size, n_boot, nq)), np.empty((bins.size, n_boot)),
+                          np.empty((bins.size, n_boot, nq)), np.empty((bins.size, n_boot)))
     for t, (a, b) in enumerate(zip(starts, stops, strict=True)):
-        part.on_sum[:, t], part.on_weight[:, t] = _weighted_sums(weights[:, shot_s[a:b]], curves[pos_on[a:b]])
+        _weighted_sums(weights[:, shot_s[a:b]], curves[pos_on[a:b]], part.on_sum[t], part.on_weight[t])
         ref, uses = np.unique(refs_s[a:b], return_counts=True)
         w_ref = weights[:, ref].astype(np.float32) * uses.astype(np.float32)
-        part.off_sum[:, t], part.off_weight[:, t] = _weighted_sums(w_ref, curves[_positions(rows, ref)])
+        _weighted_sums(w_ref, curves[_positions(rows, ref)], part.off_sum[t], part.off_weight[t])
     return part
 
 
@@ -524,9 +525,10 @@ def bootstrap_replicates(sums: BootstrapSums):
         replicate (empty bins; rare in bins of a few shots).
     """
     with np.errstate(invalid="ignore", divide="ignore"):
-        on = np.where(sums.on_weight[..., None] > 0, sums.on_sum / sums.on_weight[..., None], np.nan)
-        off = np.where(sums.off_weight[..., None] > 0, sums.off_sum / sums.off_weight[..., None], np.nan)
-    return on - off
+        on_w = np.where(sums.on_weight > 0, sums.on_weight, np.nan)[..., None]
+        off_w = np.where(sums.off_weight > 0, sums.off_weight, np.nan)[..., None]
+        diff = sums.on_sum / on_w - sums.off_sum / off_w  # (nbins, n_boot, nq)
+    return np.ascontiguousarray(diff.transpose(1, 0, 2))
 
 
 def replicate_correlation(replicates):
