@@ -499,10 +499,12 @@ def bootstrap_replicates(sums: BootstrapSums):
     ``D_b^r = sum_i w_i^r on_i / sum_i w_i^r - sum_j w_j^r u_bj off_j / sum_j w_j^r u_bj``
     with Poisson(1) weights w^r per shot (pump-on and pump-off alike, one
     weight per shot for the whole run). At unit weights it is exactly the bin
-    difference of the reduction. Linearized, its variance over replicates is
-    ``sum_s a_bs a_cs (x_s - mean)^2``, the empirical counterpart of
-    ``s^2 M_bc`` (:func:`bin_coefficient_overlap`), between-bin covariance
-    from shared references included.
+    difference of the reduction. Linearized in the weight fluctuations, its
+    covariance over replicates is ``sum_s a_bs a_cs (x_s - m_bs)(x_s - m_cs)``
+    (m_bs: the mean of the bin's pump-on curves, or of its reference curves
+    weighted by u_bj, whichever group s belongs to), the empirical
+    counterpart of ``s^2 M_bc`` (:func:`bin_coefficient_overlap`), the
+    between-bin covariance from shared references included.
 
     It differs from re-averaging each pump-on shot's reference with the
     replicate weights (``on_i - sum_j w_j off_j / sum_j w_j`` over its k
