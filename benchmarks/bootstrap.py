@@ -118,7 +118,7 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="10,000 shots and 10 replicates, for a smoke run")
     args = parser.parse_args(argv)
-    n_shots, n_q, nb, positions, k, n_boot, chunk, repeats, old_reps = 40_000, 600, 50, 50, 2, 50, 2_000, 3, 3
+    n_shots, n_q, nb, positions, k, n_boot, chunk, repeats, old_reps = 40_000, 600, 50, 50, 2, 50, 2_000, 5, 3
     if args.quick:
         n_shots, n_boot, repeats, old_reps = 10_000, 10, 2, 2
     rng = np.random.default_rng(0)
