@@ -47,7 +47,7 @@ def read_image(spec: str, what: str = "IMAGE") -> np.ndarray:
     else:
         path = Path(text)
         if not path.exists():
-            raise InputError(path, "no such file", expected)
+            raise InputError(str(path), "no such file", expected)
         try:
             if path.suffix.lower() in TIFF_SUFFIXES:
                 import tifffile
@@ -56,7 +56,7 @@ def read_image(spec: str, what: str = "IMAGE") -> np.ndarray:
             else:
                 data = np.load(path, allow_pickle=False)
         except (ValueError, OSError) as exc:
-            raise InputError(path, f"a file that cannot be read ({exc})", expected) from None
+            raise InputError(str(path), f"a file that cannot be read ({exc})", expected) from None
     data = np.asarray(data)
     if data.dtype.kind not in "biuf" or data.ndim not in (2, 3):
         raise InputError(text, f"an array of shape {data.shape} and dtype {data.dtype}", expected)
@@ -67,14 +67,14 @@ def _read_h5(path: Path, dataset: str, expected: str):
     import h5py
 
     if not path.exists():
-        raise InputError(path, "no such file", expected)
+        raise InputError(str(path), "no such file", expected)
     try:
         with h5py.File(path, "r") as h5:
             if dataset not in h5 or not isinstance(h5[dataset], h5py.Dataset):
                 raise InputError(f"{path}:{dataset}", "no such dataset", expected)
             return h5[dataset][...]
     except OSError as exc:
-        raise InputError(path, f"a file HDF5 cannot open ({exc})", expected) from None
+        raise InputError(str(path), f"a file HDF5 cannot open ({exc})", expected) from None
 
 
 def detector_section(cal) -> dict:
@@ -139,7 +139,7 @@ def plot(cal, image: np.ndarray, mask, path: Path):
     ax1.set_ylabel("residual 2theta - 2theta_hkl (millidegrees)")
     ax1.set_xlim(-180, 180)
     ax1.set_title(f"D = {g.distance_mm:.3f} mm, tilt = ({g.tilt_deg[0]:.3f}, {g.tilt_deg[1]:.3f}) deg; "
-                  "dashed: threshold")
+                  "dashed: threshold (on ring sector medians)")
     ax1.legend(fontsize=7, markerscale=4, ncol=2, loc="upper right")
     fig.tight_layout()
     fig.savefig(path, dpi=110, format="png")

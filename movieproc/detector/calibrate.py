@@ -444,7 +444,7 @@ def ring_points(image, valid, geometry, two_theta_ref):
 
 def _unpack(x, free, fixed):
     values = dict(fixed)
-    values.update(zip(free, x))
+    values.update(zip(free, x, strict=True))
     return values
 
 
@@ -511,7 +511,7 @@ def fit_geometry(rows, cols, d_point, start: geom.Geometry, photon_energy, free)
     except np.linalg.LinAlgError:
         errs = np.full(len(free), np.nan)
     values = _unpack(final.x, free, fixed)
-    return values, dict(zip(free, errs.tolist())), fun(final.x, rows, cols, d_point), inlier
+    return values, dict(zip(free, errs.tolist(), strict=True)), fun(final.x, rows, cols, d_point), inlier
 
 
 def _free_parameters(fix_distance: bool, refine_energy: bool):
@@ -650,7 +650,8 @@ def _residual_message(worst, limit, pixel_deg, calibrant, g, energy, rows, cols,
     except (ValueError, np.linalg.LinAlgError):
         free_worst, fitted = np.inf, energy
     ratio = fitted / energy
-    if free_worst <= limit and 1.0 / ENERGY_DIAGNOSIS_FACTOR < ratio < ENERGY_DIAGNOSIS_FACTOR and abs(ratio - 1) > 1e-3:
+    plausible = 1.0 / ENERGY_DIAGNOSIS_FACTOR < ratio < ENERGY_DIAGNOSIS_FACTOR and abs(ratio - 1) > 1e-3
+    if free_worst <= limit and plausible:
         return text + (f"with the photon energy free the rings fit (worst {free_worst:.4f} deg) at {fitted:.4f} keV "
                        f"instead of {energy:.4f} keV: the photon energy given is likely wrong")
     return text + ("the rings do not fit this calibrant at this photon energy: check the calibrant, the photon "
