@@ -195,6 +195,8 @@ def main(args) -> int:
     from .io.store import atomic_path
 
     out = Path(args.out)
+    if not (np.isfinite(args.energy_kev) and args.energy_kev > 0):
+        raise InputError("--energy-kev", f"{args.energy_kev}", "a positive photon energy in keV")
     image = read_image(args.image)
     mask = None if args.mask is None else read_image(args.mask, "--mask") != 0
     if mask is not None and mask.shape != image.shape:
