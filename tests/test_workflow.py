@@ -180,11 +180,12 @@ def test_bins_outside_every_delay_are_a_data_error(tmp_path):
     out = tmp_path / "out"
     cfg = C.load(overrides=["compute.progress=false", "compute.workers=1", "selection.outliers.window=60",
                             "binning.mode=edges", "binning.edges_ps=[100.0, 200.0]"])
-    ingest.run([str(f)], out / "shots.zarr", cfg)
-    select.run(out / "shots.zarr", out / "selection.zarr", cfg)
-    delays.run(out / "shots.zarr", out / "delays.zarr", cfg)
+    ingest.run({"files": [str(f)]}, out / "shots.zarr", cfg)
+    select.run({"shots": out / "shots.zarr"}, out / "selection.zarr", cfg)
+    delays.run({"shots": out / "shots.zarr"}, out / "delays.zarr", cfg)
     with pytest.raises(DataError, match="no kept pump-on shot falls inside the bins 100..200 ps"):
-        bins.run(out / "shots.zarr", out / "selection.zarr", out / "delays.zarr", out / "bins.zarr", cfg)
+        bins.run({"shots": out / "shots.zarr", "selection": out / "selection.zarr", "delays": out / "delays.zarr"},
+                 out / "bins.zarr", cfg)
     assert not (out / "bins.zarr").exists() and leftovers(out) == []
 
 
