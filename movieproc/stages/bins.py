@@ -56,7 +56,8 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         warnings.add(f"{edges.size - 1} equal-population bins instead of binning.count = {binning['count']}: "
                      "many shots share the same delays (nominal stage positions?)")
     if bins.n_nan:
-        warnings.add(f"{bins.n_nan} kept pump-on shots have no corrected delay (no timing-tool edge) and are not binned")
+        warnings.add(f"{bins.n_nan} kept pump-on shots have no corrected delay (no timing-tool edge) "
+                     "and are not binned")
     if bins.n_outside:
         warnings.add(f"{bins.n_outside} kept pump-on shots lie outside the bin edges "
                      f"[{edges[0]:.4g}, {edges[-1]:.4g}] ps and are not binned")

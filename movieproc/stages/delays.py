@@ -57,7 +57,8 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     log.info("corrected delays: %d shots, %d without a timing correction; correction rms %.1f fs",
              delay.size, int((~finite).sum()), rms)
     if timing["use_timing_tool"] and finite.any() and rms > SUSPECT_CORRECTION_RMS_FS:
-        warnings.add(f"timing-tool correction has an rms of {rms:.0f} fs: check timing.calibration_fs and the edge units")
+        warnings.add(f"timing-tool correction has an rms of {rms:.0f} fs: check timing.calibration_fs "
+                     "and the edge units")
     with store.atomic_path(out) as tmp:
         g = store.new_group(tmp, {"timing": timing, "correction_rms_fs": rms, "written": now(),
                                   "warnings": list(warnings),

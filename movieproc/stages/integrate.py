@@ -121,7 +121,8 @@ def _photon_energies(info, table, detector, warnings):
         fallbacks = ("detector.photon_energy_kev, or shots/electron_energy (GeV) with "
                      "detector.undulator.period_mm and k")
         if "photon_energy" in table:
-            found = f"{table['photon_energy'][first]!r} at shot {local} ({missing.size} shot(s) without a usable energy)"
+            found = (f"{table['photon_energy'][first]!r} at shot {local} "
+                     f"({missing.size} shot(s) without a usable energy)")
             raise InputError(f"{path}:shots/photon_energy", found,
                              f"a positive photon energy in keV for every shot, or a fallback: {fallbacks}")
         raise InputError(f"{path}:shots/photon_energy", "no such dataset and no usable fallback",
@@ -256,7 +257,8 @@ def _setup(info, detector, photon, warnings) -> _Setup:
                           "of the P2 fit is not computed)")
     geo = geometry.from_config(detector, shape)
     if not detector["q_max"] > detector["q_min"]:
-        raise ConfigError("detector.q_max", f"{detector['q_max']}", f"a value above detector.q_min = {detector['q_min']}")
+        raise ConfigError("detector.q_max", f"{detector['q_max']}",
+                          f"a value above detector.q_min = {detector['q_min']}")
     e_ref, scale = _reference(detector, photon)
     q = np.linspace(detector["q_min"], detector["q_max"], detector["q_count"])
     grid = curves.reference_grid(q, scale, detector["energy_aware"])
