@@ -366,8 +366,9 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     table = runfile.read_table(info)
     with config_errors(CONFIG_KEYS, config):
         photon, origins = _photon_energies(info, table, detector, warnings)
-        log.info("run of %d shots in %d file(s), frames %d x %d (%s); photon energy %.4f-%.4f keV (%s)",
-                 info.n_shots, len(info.files), *info.frame_shape, info.data_dtype, photon.min(), photon.max(),
+        log.info("run of %d shots in %d file(s), frames %s (%s); photon energy %.4f-%.4f keV (%s)",
+                 info.n_shots, len(info.files), " x ".join(str(v) for v in info.frame_shape or ()), info.data_dtype,
+                 photon.min(), photon.max(),
                  ", ".join(f"{v} from {k}" for k, v in origins.items() if v))
         setup = _setup(info, detector, photon, warnings)
     attrs = {
