@@ -34,11 +34,13 @@ def reduced(tmp_path_factory):
     cfg = _config(d)
     files = [d / "run_000.h5"]
     synth.synthesize_run(SCENARIO, 20000, 2, files, d / "truth.zarr")
-    ingest.run(files, d / "shots.zarr", cfg)
-    select.run(d / "shots.zarr", d / "selection.zarr", cfg)
-    delays.run(d / "shots.zarr", d / "delays.zarr", cfg)
-    bins.run(d / "shots.zarr", d / "selection.zarr", d / "delays.zarr", d / "bins.zarr", cfg)
-    difference.run(d / "shots.zarr", d / "selection.zarr", d / "bins.zarr", d / "binned.zarr", cfg)
+    ingest.run({"files": files}, d / "shots.zarr", cfg)
+    select.run({"shots": d / "shots.zarr"}, d / "selection.zarr", cfg)
+    delays.run({"shots": d / "shots.zarr"}, d / "delays.zarr", cfg)
+    bins.run({"shots": d / "shots.zarr", "selection": d / "selection.zarr", "delays": d / "delays.zarr"},
+             d / "bins.zarr", cfg)
+    difference.run({"shots": d / "shots.zarr", "selection": d / "selection.zarr", "bins": d / "bins.zarr"},
+                   d / "binned.zarr", cfg)
     q = store.read(store.open_group(d / "shots.zarr"), "q")
     m = cfg["model"]
     scatter.run(m["ground"], m["trajectory"], {}, q, d / "models.zarr", {})
@@ -169,8 +171,8 @@ def test_bad_analysis_input(reduced, tmp_path):
 def test_bootstrap_over_shots(reduced):
     """Poisson bootstrap over shots: replicates refitted; their spread is the same order as the Jacobian errors."""
     cfg = _config(reduced, "differences.bootstrap=12", "differences.seed=3")
-    difference.run(reduced / "shots.zarr", reduced / "selection.zarr", reduced / "bins.zarr",
-                   reduced / "binned_boot.zarr", cfg)
+    difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
+                    "bins": reduced / "bins.zarr"}, reduced / "binned_boot.zarr", cfg)
     b = store.open_group(reduced / "binned_boot.zarr")
     boot = store.read(b, "diff_boot")
     assert boot.shape[0] == 12
@@ -212,8 +214,8 @@ def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
     """The absolute scale holds whatever the curves were normalized by (window, total, none)."""
     for mode in ("total", "none"):  # "none": curves left in detector units
         cfg = _config(reduced, f"differences.normalization={mode}")
-        difference.run(reduced / "shots.zarr", reduced / "selection.zarr", reduced / "bins.zarr",
-                       tmp_path / f"binned_{mode}.zarr", cfg)
+        difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
+                        "bins": reduced / "bins.zarr"}, tmp_path / f"binned_{mode}.zarr", cfg)
         analyze.run(tmp_path / f"binned_{mode}.zarr", reduced / "models.zarr", tmp_path / f"{mode}.zarr", cfg)
         p = store.open_group(tmp_path / f"{mode}.zarr").attrs["fit_parameters"]["alpha"]
         # scenario truth 0.15 (demo_data/scenario.yaml), within 3 of its standard errors

@@ -66,8 +66,9 @@ def test_stage_stores_both_parts(tmp_path):
                              "pulse_energy": np.ones(n), "timing_edge": np.zeros(n), "photon_energy": photon}.items():
             h5[f"shots/{name}"] = values
         h5["frames"] = frames
-    integrate.run([tmp_path / "run.h5"], tmp_path / "shots.zarr", det,
-                  {"workers": 2, "scheduler": "threads", "chunk_shots": 16, "progress": False})
+    integrate.run({"files": [tmp_path / "run.h5"]}, tmp_path / "shots.zarr",
+                  {"detector": det, "compute": {"workers": 2, "scheduler": "threads", "chunk_shots": 16,
+                                                "progress": False}})
     store = open_shots(tmp_path / "shots.zarr")
     q = store.q
     s0, s2 = store.curves(0, n), store.curves(0, n, "curves_p2")

@@ -7,7 +7,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from movieproc.errors import ConfigError, DataError
+from movieproc.errors import DataError
 from movieproc.shots import binning as B
 
 
@@ -111,9 +111,10 @@ def test_fixed_width_edges():
 
 
 def test_fixed_width_errors():
-    with pytest.raises(ConfigError, match="binning.width_ps"):
+    # the core names its own parameters; the bin stage maps them to binning.width_ps, stop_ps
+    with pytest.raises(ValueError, match="^width must be a positive bin width in ps, got 0.0"):
         B.fixed_width_edges([0.0, 1.0], 0.0)
-    with pytest.raises(ConfigError, match="binning.stop_ps"):
+    with pytest.raises(ValueError, match="^stop must lie above start = 1.0 ps, got 0.5"):
         B.fixed_width_edges([0.0, 1.0], 0.1, 1.0, 0.5)
     with pytest.raises(DataError, match="finite"):
         B.fixed_width_edges([np.nan, np.nan], 0.1)
@@ -150,14 +151,14 @@ def test_population_edges_errors():
 
 def test_make_edges_modes():
     d = np.linspace(-1, 2, 301)
-    np.testing.assert_allclose(B.make_edges(d, {"mode": "width", "width_ps": 0.5, "start_ps": -1, "stop_ps": 2}),
+    np.testing.assert_allclose(B.make_edges(d, "width", width=0.5, start=-1, stop=2),
                                np.linspace(-1, 2, 7), atol=1e-12)
-    assert B.make_edges(d, {"mode": "population", "count": 3}).size == 4
-    np.testing.assert_array_equal(B.make_edges(d, {"mode": "edges", "edges_ps": [-1, 0, 0.5]}), [-1, 0, 0.5])
-    with pytest.raises(ConfigError, match="binning.edges_ps"):
-        B.make_edges(d, {"mode": "edges", "edges_ps": [0, 0]})
-    with pytest.raises(ConfigError, match="binning.mode"):
-        B.make_edges(d, {"mode": "log"})
+    assert B.make_edges(d, "population", count=3).size == 4
+    np.testing.assert_array_equal(B.make_edges(d, "edges", edges=[-1, 0, 0.5]), [-1, 0, 0.5])
+    with pytest.raises(ValueError, match="^edges must be at least two strictly increasing"):
+        B.make_edges(d, "edges", edges=[0, 0])
+    with pytest.raises(ValueError, match="^mode must be one of width, population, edges, got 'log'"):
+        B.make_edges(d, "log")
 
 
 # ------------------------------------------------------------------ streamed sums

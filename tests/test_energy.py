@@ -98,7 +98,8 @@ def test_energy_jitter_leaves_no_residual_when_each_shot_has_its_own_q(tmp_path)
     for aware in (True, False):
         curves = {}
         for name in "AB":
-            integrate.run([tmp_path / f"{name}.h5"], tmp_path / f"{name}.zarr", dict(det, energy_aware=aware), compute)
+            integrate.run({"files": [tmp_path / f"{name}.h5"]}, tmp_path / f"{name}.zarr",
+                          {"detector": dict(det, energy_aware=aware), "compute": compute})
             curves[name] = open_shots(tmp_path / f"{name}.zarr").curves(0, n).astype(np.float64)
         sigma2 = np.mean((curves["A"] - curves["B"]) ** 2, axis=0) / 2
         diff = curves["A"][0::2] - curves["A"][1::2]

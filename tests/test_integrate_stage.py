@@ -45,6 +45,15 @@ def _frames(det, n, photon, rng, **kw):
     return forward.render_frames(Q, np.tile(_curve(Q), (n, 1)), photon, det, rng, **kw)
 
 
+def _integrate(files, out, detector, compute=COMPUTE):
+    """Run the stage; its summary read back from the store it wrote."""
+    integrate.run({"files": files}, Path(out), {"detector": detector, "compute": compute})
+    attrs = zarr.open_group(str(out), mode="r").attrs
+    return {"shots": sum(attrs["counts"]), "pixels_left_out": attrs["pixels_left_out"],
+            "shot_pixels_left_out": attrs["shot_pixels_left_out"], "sectors": attrs["detector"]["sectors"],
+            "variance": attrs["detector"]["variance"], "warnings": attrs["warnings"]}
+
+
 def _nothing_written(out: Path):
     return not out.exists() and not any(p.name.startswith(f".{out.name}.") for p in out.parent.iterdir())
 
@@ -67,7 +76,7 @@ def test_two_files_of_uint16_frames_with_dark_hot_pixels_mask_and_saturation(tmp
     det.update(dark_file=str(tmp_path / "dark.npy"), mask_file=f"{tmp_path / 'mask.h5'}:entry/mask",
                saturation_level=65000)
     out = tmp_path / "shots.zarr"
-    summary = integrate.run([str(tmp_path / "run_b.h5"), str(tmp_path / "run_a.h5")], out, det, COMPUTE)
+    summary = _integrate([str(tmp_path / "run_b.h5"), str(tmp_path / "run_a.h5")], out, det, COMPUTE)
     assert summary["shots"] == 48 and summary["pixels_left_out"]["hot"] >= 10  # some hot pixels sit in the shadow
     assert summary["shot_pixels_left_out"] >= 1
     store = open_shots(out)
@@ -93,8 +102,8 @@ def test_results_do_not_depend_on_the_scheduler(tmp_path):
     det = _detector(mask_file=None)
     photon = np.full(20, 11.5)
     _write_run(tmp_path / "run.h5", _frames(det, 20, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "a.zarr", det, COMPUTE)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "b.zarr", det,
+    _integrate([tmp_path / "run.h5"], tmp_path / "a.zarr", det, COMPUTE)
+    _integrate([tmp_path / "run.h5"], tmp_path / "b.zarr", det,
                   {"workers": 1, "scheduler": "synchronous", "chunk_shots": 16, "progress": False})
     np.testing.assert_array_equal(open_shots(tmp_path / "a.zarr").curves(0, 20), open_shots(tmp_path / "b.zarr").curves(0, 20))
 
@@ -108,11 +117,11 @@ def test_photon_energy_from_the_electron_energy_and_from_the_config(tmp_path):
     # without pixels are refused by the stage)
     det = _detector(undulator=und, q_max=2.1)
     _write_run(tmp_path / "run.h5", _frames(det, 16, expected, rng, photons_per_pixel=100.0), electron=electron)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "e.zarr", det, COMPUTE)
+    _integrate([tmp_path / "run.h5"], tmp_path / "e.zarr", det, COMPUTE)
     np.testing.assert_allclose(open_shots(tmp_path / "e.zarr").table["photon_energy"], expected, rtol=1e-12)
     # no undulator settings: the configured energy is the fallback for every shot
     det2 = _detector(photon_energy_kev=8.7, q_max=2.1)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "c.zarr", det2, COMPUTE)
+    _integrate([tmp_path / "run.h5"], tmp_path / "c.zarr", det2, COMPUTE)
     np.testing.assert_array_equal(open_shots(tmp_path / "c.zarr").table["photon_energy"], np.full(16, 8.7))
 
 
@@ -124,16 +133,16 @@ def test_missing_or_zero_photon_energy_without_fallback_is_an_error(tmp_path):
     _write_run(tmp_path / "none.h5", frames)
     out = tmp_path / "shots.zarr"
     with pytest.raises(InputError) as err:
-        integrate.run([tmp_path / "none.h5"], out, det, COMPUTE)
+        _integrate([tmp_path / "none.h5"], out, det, COMPUTE)
     assert "none.h5:shots/photon_energy" in str(err.value) and "detector.photon_energy_kev" in str(err.value)
     photon[7] = 0.0
     _write_run(tmp_path / "zero.h5", frames, photon)
     with pytest.raises(InputError) as err:
-        integrate.run([tmp_path / "zero.h5"], out, det, COMPUTE)
+        _integrate([tmp_path / "zero.h5"], out, det, COMPUTE)
     assert "zero.h5:shots/photon_energy" in str(err.value) and "at shot 7" in str(err.value)
     assert _nothing_written(out)
     with pytest.raises(ConfigError, match="detector.photon_energy_kev"):
-        integrate.run([tmp_path / "zero.h5"], out, dict(det, photon_energy_source="config"), COMPUTE)
+        _integrate([tmp_path / "zero.h5"], out, dict(det, photon_energy_source="config"), COMPUTE)
 
 
 def test_beam_centre_off_the_detector_is_an_error(tmp_path):
@@ -141,7 +150,7 @@ def test_beam_centre_off_the_detector_is_an_error(tmp_path):
     _write_run(tmp_path / "run.h5", np.zeros((4, 96, 96), np.uint16), np.full(4, 12.0))
     out = tmp_path / "shots.zarr"
     with pytest.raises(ConfigError) as err:
-        integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, det, COMPUTE)
     assert "detector.beam_center_px" in str(err.value) and "(96, 96)" in str(err.value)
     assert _nothing_written(out)
 
@@ -152,20 +161,20 @@ def test_mask_of_the_wrong_shape_is_an_error_and_an_old_store_survives(tmp_path)
     photon = np.full(8, 12.0)
     _write_run(tmp_path / "run.h5", _frames(det, 8, photon, rng, photons_per_pixel=100.0), photon)
     out = tmp_path / "shots.zarr"
-    integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+    _integrate([tmp_path / "run.h5"], out, det, COMPUTE)
     before = open_shots(out).curves(0, 8)
     np.save(tmp_path / "mask.npy", np.zeros((96, 95), bool))
     with pytest.raises(InputError) as err:
-        integrate.run([tmp_path / "run.h5"], out, dict(det, mask_file=str(tmp_path / "mask.npy")), COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, dict(det, mask_file=str(tmp_path / "mask.npy")), COMPUTE)
     text = str(err.value)
     assert "mask.npy" in text and "(96, 95)" in text and "(96, 96)" in text and "run.h5" in text
     np.testing.assert_array_equal(open_shots(out).curves(0, 8), before)
     with pytest.raises(InputError, match="no such file"):
-        integrate.run([tmp_path / "run.h5"], out, dict(det, dark_file=str(tmp_path / "dark.npy")), COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, dict(det, dark_file=str(tmp_path / "dark.npy")), COMPUTE)
     with pytest.raises(InputError, match="no such dataset"):
         with h5py.File(tmp_path / "m.h5", "w") as h5:
             h5["other"] = np.zeros((96, 96))
-        integrate.run([tmp_path / "run.h5"], out, dict(det, mask_file=f"{tmp_path / 'm.h5'}:mask"), COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, dict(det, mask_file=f"{tmp_path / 'm.h5'}:mask"), COMPUTE)
 
 
 def test_frames_of_different_shapes_across_files_are_an_error(tmp_path):
@@ -173,7 +182,7 @@ def test_frames_of_different_shapes_across_files_are_an_error(tmp_path):
     _write_run(tmp_path / "b.h5", np.zeros((4, 96, 90), np.uint16), np.full(4, 12.0), first_id=4)
     out = tmp_path / "shots.zarr"
     with pytest.raises(InputError) as err:
-        integrate.run([tmp_path / "a.h5", tmp_path / "b.h5"], out, _detector(), COMPUTE)
+        _integrate([tmp_path / "a.h5", tmp_path / "b.h5"], out, _detector(), COMPUTE)
     assert "b.h5:frames" in str(err.value) and "(96, 90)" in str(err.value)
     assert _nothing_written(out)
 
@@ -186,12 +195,12 @@ def test_curves_runs_and_a_wrong_configured_shape_are_errors(tmp_path):
         h5["q"] = np.linspace(1, 2, 5)
         h5["curves"] = np.ones((3, 5), np.float32)
     with pytest.raises(InputError, match="frames"):
-        integrate.run([tmp_path / "curves.h5"], tmp_path / "s.zarr", _detector(), COMPUTE)
+        _integrate([tmp_path / "curves.h5"], tmp_path / "s.zarr", _detector(), COMPUTE)
     _write_run(tmp_path / "run.h5", np.zeros((4, 96, 96), np.uint16), np.full(4, 12.0))
     with pytest.raises(ConfigError, match="detector.shape_px"):
-        integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(shape_px=[90, 96]), COMPUTE)
+        _integrate([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(shape_px=[90, 96]), COMPUTE)
     with pytest.raises(ConfigError, match="detector.q_min"):
-        integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(q_min=20.0, q_max=30.0), COMPUTE)
+        _integrate([tmp_path / "run.h5"], tmp_path / "s.zarr", _detector(q_min=20.0, q_max=30.0), COMPUTE)
 
 
 def test_q_points_without_pixels_are_refused(tmp_path):
@@ -203,7 +212,7 @@ def test_q_points_without_pixels_are_refused(tmp_path):
     _write_run(tmp_path / "run.h5", _frames(det, 8, photon, rng, photons_per_pixel=100.0), photon)
     out = tmp_path / "shots.zarr"
     with pytest.raises(ConfigError, match="detector.q_min/q_max") as err:
-        integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, det, COMPUTE)
     assert "detector.q_max=" in str(err.value)
     assert _nothing_written(out)
 
@@ -226,7 +235,7 @@ def test_sectors_of_an_isotropic_pattern_all_equal_the_whole_ring(tmp_path):
     det["mask_file"] = str(tmp_path / "mask.npy")
     photon = 12.0 * (1 + 0.001 * rng.standard_normal(6))
     _write_run(tmp_path / "run.h5", _frames(det, 6, photon, rng, photons_per_pixel=None), photon)
-    summary = integrate.run([tmp_path / "run.h5"], tmp_path / "s4.zarr", det, COMPUTE)
+    summary = _integrate([tmp_path / "run.h5"], tmp_path / "s4.zarr", det, COMPUTE)
     assert summary["sectors"] == 4 and summary["warnings"] == []
     group = zarr.open_group(str(tmp_path / "s4.zarr"))
     # sector k centred at k * 360 / 4 degrees (schema description)
@@ -240,7 +249,7 @@ def test_sectors_of_an_isotropic_pattern_all_equal_the_whole_ring(tmp_path):
     np.testing.assert_allclose(sectors, np.repeat(curves[:, None], 4, axis=1), rtol=5e-3)
     # and the whole rings (sums over the sectors) are the plain integration's rings; float32
     # partial sums in a different order differ by ~1e-7 relative
-    integrate.run([tmp_path / "run.h5"], tmp_path / "s1.zarr", dict(det, sectors=1), COMPUTE)
+    _integrate([tmp_path / "run.h5"], tmp_path / "s1.zarr", dict(det, sectors=1), COMPUTE)
     plain = zarr.open_group(str(tmp_path / "s1.zarr"))
     assert "curves_sectors" not in plain and "sector" not in plain and "curves_var" not in plain
     np.testing.assert_allclose(curves, plain["curves"][...], rtol=1e-5)
@@ -257,7 +266,7 @@ def test_sectors_of_an_aligned_pattern_follow_p2(tmp_path):
     frames = forward.render_frames(Q, np.tile(_curve(Q), (3, 1)), photon, det, rng, photons_per_pixel=None,
                                    masked_region=None, curves_p2=np.tile(i2, (3, 1)))
     _write_run(tmp_path / "run.h5", frames, photon)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
+    _integrate([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
     group = zarr.open_group(str(tmp_path / "s.zarr"))
     q = group["q"][...]
     sectors, iso = group["curves_sectors"][...][0], group["curves"][...][0]
@@ -296,7 +305,7 @@ def test_sector_q_points_without_pixels_are_nan_and_named_in_a_warning(tmp_path)
     det["mask_file"] = str(tmp_path / "mask.npy")
     photon = 12.0 * (1 + 0.001 * rng.standard_normal(4))
     _write_run(tmp_path / "run.h5", _frames(det, 4, photon, rng, photons_per_pixel=None, masked_region=None), photon)
-    summary = integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
+    summary = _integrate([tmp_path / "run.h5"], tmp_path / "s.zarr", det, COMPUTE)
     store = open_shots(tmp_path / "s.zarr")
     sectors = store.curves(0, 4, "curves_sectors")
     assert np.all(np.isfinite(store.curves(0, 4)))  # whole rings still covered
@@ -344,7 +353,7 @@ def test_per_shot_variance_matches_the_shot_to_shot_scatter(tmp_path):
     # pixel spread not divided down to the mean's variance would be ~100x off.
     for mode in ("counting", "spread"):
         det = _detector(mask_file=None, dark_file=dark, variance=mode)
-        summary = integrate.run([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, dict(COMPUTE, chunk_shots=400))
+        summary = _integrate([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, dict(COMPUTE, chunk_shots=400))
         assert summary["variance"] == mode and summary["warnings"] == []
         store = open_shots(tmp_path / f"{mode}.zarr")
         var = store.curves(0, n, "curves_var")
@@ -369,7 +378,7 @@ def test_variance_read_between_grid_points_is_conservative_as_documented(tmp_pat
     photon = 12.0 * (1 + 0.01 * rng.standard_normal(n))  # spreads shots over grid positions
     dark = _poisson_run(tmp_path, n, photon, rng, _detector())
     det = _detector(mask_file=None, dark_file=dark, variance="counting", q_max=2.0)
-    integrate.run([tmp_path / "run.h5"], tmp_path / "s.zarr", det, dict(COMPUTE, chunk_shots=400))
+    _integrate([tmp_path / "run.h5"], tmp_path / "s.zarr", det, dict(COMPUTE, chunk_shots=400))
     store = open_shots(tmp_path / "s.zarr")
     var = store.curves(0, n, "curves_var").mean(axis=0)
     observed = store.curves(0, n).astype(np.float64).var(axis=0, ddof=1)
@@ -401,7 +410,7 @@ def test_sector_and_variance_settings_are_checked(tmp_path):
     out = tmp_path / "s.zarr"
     det = _detector(variance="counting", anisotropy={"enabled": True})
     with pytest.raises(ConfigError, match=r"detector\.variance") as err:
-        integrate.run([tmp_path / "run.h5"], out, det, COMPUTE)
+        _integrate([tmp_path / "run.h5"], out, det, COMPUTE)
     assert "detector.anisotropy.enabled" in str(err.value)
     assert _nothing_written(out)
 
@@ -414,7 +423,7 @@ def test_variance_leaves_out_the_saturated_pixels_of_a_shot(tmp_path):
     _write_run(tmp_path / "run.h5", frames, photon)
     for mode in ("counting", "spread"):
         det = _detector(variance=mode, saturation_level=65000, sectors=3)
-        summary = integrate.run([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, COMPUTE)
+        summary = _integrate([tmp_path / "run.h5"], tmp_path / f"{mode}.zarr", det, COMPUTE)
         assert summary["shot_pixels_left_out"] == 20 and summary["warnings"] == []
         store = open_shots(tmp_path / f"{mode}.zarr")
         var = store.curves(0, 16, "curves_var")

@@ -85,9 +85,10 @@ def test_stage_functions_recover_the_truth_with_other_bins(demo_run, tmp_path, b
     assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
     cfg = C.load(overrides=["compute.progress=false", *binning])
     out = demo_run.out
-    bins_stage.run(out / "shots.zarr", out / "selection.zarr", out / "delays.zarr", tmp_path / "bins.zarr", cfg)
-    difference_stage.run(out / "shots.zarr", out / "selection.zarr", tmp_path / "bins.zarr",
-                         tmp_path / "binned.zarr", cfg)
+    bins_stage.run({"shots": out / "shots.zarr", "selection": out / "selection.zarr", "delays": out / "delays.zarr"},
+                   tmp_path / "bins.zarr", cfg)
+    difference_stage.run({"shots": out / "shots.zarr", "selection": out / "selection.zarr",
+                          "bins": tmp_path / "bins.zarr"}, tmp_path / "binned.zarr", cfg)
     index, = _read(tmp_path / "bins.zarr", "index")
     diff, err, delay, n, low = _read(tmp_path / "binned.zarr", "diff", "diff_err", "delay", "n_shots", "low_count")
     assert diff.shape[0] == 30  # binning.count = 30, or (2 - (-1)) / 0.1 bins of fixed width

@@ -48,7 +48,7 @@ def test_inspect_and_read_two_files_in_name_order(tmp_path):
 def test_ingest_writes_a_labelled_shots_store(make_run, tmp_path):
     f = make_run(n=150)
     out = tmp_path / "out" / "shots.zarr"
-    ingest.run([str(f)], out, _config())
+    ingest.run({"files": [str(f)]}, out, _config())
     s = shotstore.open_shots(out)
     data = run_datasets(n=150)
     np.testing.assert_array_equal(s.curves(0, 150), data["curves"])
@@ -161,7 +161,7 @@ def test_non_finite_curve_names_file_dataset_and_shot(tmp_path, bad):
     b = write_h5(tmp_path / "in" / "run_001.h5", d)
     out = tmp_path / "out" / "shots.zarr"
     with pytest.raises(InputError) as exc:
-        ingest.run([str(a), str(b)], out, _config())
+        ingest.run({"files": [str(a), str(b)]}, out, _config())
     msg = str(exc.value)
     assert f"{b}:curves" in msg and "at shot 71" in msg and "q index 12" in msg and str(bad) in msg
     assert not out.exists()
@@ -170,13 +170,13 @@ def test_non_finite_curve_names_file_dataset_and_shot(tmp_path, bad):
 
 def test_ingest_of_a_bad_run_keeps_the_previous_store(make_run, tmp_path):
     out = tmp_path / "out" / "shots.zarr"
-    ingest.run([str(make_run("good.h5", n=90))], out, _config())
+    ingest.run({"files": [str(make_run("good.h5", n=90))]}, out, _config())
 
     def edit(d):
         d["curves"][5, 0] = np.nan
 
     with pytest.raises(InputError):
-        ingest.run([str(make_run("bad.h5", edit=edit))], out, _config())
+        ingest.run({"files": [str(make_run("bad.h5", edit=edit))]}, out, _config())
     assert shotstore.open_shots(out).n_shots == 90  # untouched
     assert leftovers(tmp_path / "out") == []
 
@@ -203,7 +203,7 @@ def test_failed_parallel_ingest_leaves_no_temporary(tmp_path, monkeypatch):
     monkeypatch.setattr(runfile, "read_curves", slow_disk)
     out = tmp_path / "out" / "shots.zarr"
     with pytest.raises(InputError, match="at shot 3"):
-        ingest.run([str(f)], out, _config("compute.workers=2"))
+        ingest.run({"files": [str(f)]}, out, _config("compute.workers=2"))
     time.sleep(1.0)  # let any straggler finish
     assert not out.exists()
     assert leftovers(tmp_path / "out") == []

@@ -35,8 +35,9 @@ def test_strong_pump_signal_is_not_an_outlier(tmp_path):
     cfg = mpconfig.validate({"run": {"files": [str(tmp_path / "run.h5")]}, "compute": {"progress": False},
                              "selection": {"pulse_energy": {"min_fraction_of_median": None},
                                            "outliers": {"window": 400}}})
-    ingest.run([tmp_path / "run.h5"], tmp_path / "shots.zarr", cfg)
-    counts = select.run(tmp_path / "shots.zarr", tmp_path / "sel.zarr", cfg)
+    ingest.run({"files": [tmp_path / "run.h5"]}, tmp_path / "shots.zarr", cfg)
+    select.run({"shots": tmp_path / "shots.zarr"}, tmp_path / "sel.zarr", cfg)
+    counts = store.open_group(tmp_path / "sel.zarr").attrs["counts"]
     reasons = store.read(store.open_group(tmp_path / "sel.zarr"), "reasons")
     flagged = np.flatnonzero(reasons & 16)
     # every planted distortion is found, and no clean shot (on or off) is flagged

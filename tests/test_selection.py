@@ -3,6 +3,7 @@ and the ``select`` stage's refusal of runs it cannot difference."""
 
 import numpy as np
 import pytest
+import zarr
 from scipy import stats
 
 from conftest import leftovers
@@ -20,7 +21,7 @@ def test_mad_factor_is_normal_consistency_constant():
 def test_pulse_energy_flags():
     e = np.array([0.1, 0.5, 1.0, 1.5, 3.0, np.nan])
     np.testing.assert_array_equal(S.pulse_energy_flags(e), [0, 0, 0, 0, 0, 1])  # NaN always cut
-    np.testing.assert_array_equal(S.pulse_energy_flags(e, min=0.5, max=1.5), [1, 0, 0, 0, 1, 1])
+    np.testing.assert_array_equal(S.pulse_energy_flags(e, low=0.5, high=1.5), [1, 0, 0, 0, 1, 1])
     # median of the finite values = 1.0 (hand): below 0.3 cut
     np.testing.assert_array_equal(S.pulse_energy_flags(e, min_fraction_of_median=0.3), [1, 0, 0, 0, 0, 1])
 
@@ -84,7 +85,7 @@ def _config(*extra):
 def _ingest(make_run, tmp_path, **kw):
     f = make_run(**kw)
     shots = tmp_path / "out" / "shots.zarr"
-    ingest.run([str(f)], shots, _config())
+    ingest.run({"files": [str(f)]}, shots, _config())
     return shots
 
 
@@ -94,7 +95,8 @@ def test_select_counts_reasons(make_run, tmp_path):
         d["shots/timing_edge"][[5, 10]] = np.nan
 
     shots = _ingest(make_run, tmp_path, edit=edit)
-    counts = select.run(shots, tmp_path / "out" / "selection.zarr", _config())
+    select.run({"shots": shots}, tmp_path / "out" / "selection.zarr", _config())
+    counts = zarr.open_group(str(tmp_path / "out" / "selection.zarr"), mode="r").attrs["counts"]
     assert counts["pulse_energy"] == 3 and counts["timing_missing"] == 2
     assert counts["total"] == 240 and counts["kept"] == 240 - 4 - counts["outlier"]
     assert counts["kept_pump_on"] + counts["kept_pump_off"] == counts["kept"]
@@ -107,7 +109,7 @@ def test_select_without_pump_off_shots_is_a_data_error(make_run, tmp_path):
     shots = _ingest(make_run, tmp_path, edit=edit)
     out = tmp_path / "out" / "selection.zarr"
     with pytest.raises(DataError, match="pump-off"):
-        select.run(shots, out, _config())
+        select.run({"shots": shots}, out, _config())
     assert not out.exists() and leftovers(tmp_path / "out") == []
 
 
@@ -115,5 +117,5 @@ def test_select_with_every_shot_cut_is_a_data_error(make_run, tmp_path):
     shots = _ingest(make_run, tmp_path)
     out = tmp_path / "out" / "selection.zarr"
     with pytest.raises(DataError, match="every one of the 240 shots was cut"):
-        select.run(shots, out, _config("selection.pulse_energy.min=1000"))
+        select.run({"shots": shots}, out, _config("selection.pulse_energy.min=1000"))
     assert not out.exists() and leftovers(tmp_path / "out") == []

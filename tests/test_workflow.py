@@ -1,6 +1,8 @@
 """End-to-end tests of the workflow and the ``movieproc`` command: the demo, re-running only
 what a config change touches, summaries, the synthesizer, and bad input through the CLI."""
 
+import copy
+import importlib
 import shutil
 from pathlib import Path
 
@@ -72,7 +74,7 @@ def test_summary_of_the_movie(demo_run, capsys):
 # ------------------------------------------------------------------ re-running after a config change
 
 @pytest.mark.slow
-def test_rebinning_and_recalibration_rerun_only_what_follows(tmp_path):
+def test_rebinning_recalibration_and_bootstrap_rerun_only_what_follows(tmp_path):
     base = [f"output_dir={tmp_path / 'out'}",
             f"run.files=['{tmp_path / 'in' / 'run_000.h5'}', '{tmp_path / 'in' / 'run_001.h5'}']",
             f"run.generate.truth={tmp_path / 'in' / 'truth.zarr'}",
@@ -115,6 +117,13 @@ def test_rebinning_and_recalibration_rerun_only_what_follows(tmp_path):
     expect = stage - tim["time_zero_ps"] + tim["sign"] * (poly(edge, cal) - poly(tim["edge_at_time_zero_px"], cal)) / 1000
     got = zarr.open_group(str(out / "delays.zarr"), mode="r")["delay"][: stage.size]
     np.testing.assert_allclose(got, expect, rtol=1e-12, atol=1e-12)
+
+    # the bootstrap changes the differences' replicates only: select, time and bin keep their stores
+    boot = recal + ["differences.bootstrap=3"]
+    made, names = remade(run_workflow(C.load(overrides=boot), cores=2, workdir=tmp_path))
+    assert made == {"binned.zarr", "movie.zarr"}
+    assert "selection.zarr" not in names and "bins.zarr" not in names
+    assert zarr.open_group(str(out / "binned.zarr"), mode="r")["diff_boot"].shape[0] == 3
     assert leftovers(tmp_path) == []
 
 
@@ -180,11 +189,12 @@ def test_bins_outside_every_delay_are_a_data_error(tmp_path):
     out = tmp_path / "out"
     cfg = C.load(overrides=["compute.progress=false", "compute.workers=1", "selection.outliers.window=60",
                             "binning.mode=edges", "binning.edges_ps=[100.0, 200.0]"])
-    ingest.run([str(f)], out / "shots.zarr", cfg)
-    select.run(out / "shots.zarr", out / "selection.zarr", cfg)
-    delays.run(out / "shots.zarr", out / "delays.zarr", cfg)
+    ingest.run({"files": [str(f)]}, out / "shots.zarr", cfg)
+    select.run({"shots": out / "shots.zarr"}, out / "selection.zarr", cfg)
+    delays.run({"shots": out / "shots.zarr"}, out / "delays.zarr", cfg)
     with pytest.raises(DataError, match="no kept pump-on shot falls inside the bins 100..200 ps"):
-        bins.run(out / "shots.zarr", out / "selection.zarr", out / "delays.zarr", out / "bins.zarr", cfg)
+        bins.run({"shots": out / "shots.zarr", "selection": out / "selection.zarr", "delays": out / "delays.zarr"},
+                 out / "bins.zarr", cfg)
     assert not (out / "bins.zarr").exists() and leftovers(out) == []
 
 
@@ -204,3 +214,85 @@ def test_process_run_without_pump_off_shots_fails_cleanly(tmp_path, monkeypatch,
     for name in STAGE_OUTPUTS[1:]:
         assert not (tmp_path / "out" / name).exists()
     assert leftovers(tmp_path / "out") == []
+
+
+# ------------------------------------------------------------------ config keys in stage errors
+
+REDUCTION_STAGES = ["ingest", "integrate", "select", "delays", "bins", "difference"]
+
+
+def _in_schema(schema, key):
+    node = schema
+    for part in key.split("."):
+        node = node.get("properties", {}).get(part)
+        if node is None:
+            return False
+    return True
+
+
+@pytest.mark.parametrize("name", REDUCTION_STAGES)
+def test_every_config_key_a_stage_maps_core_errors_to_exists_in_the_schema(name):
+    keys = importlib.import_module(f"movieproc.stages.{name}").CONFIG_KEYS
+    assert keys
+    schema = C.load_schema()
+    assert [key for key in keys.values() if not _in_schema(schema, key)] == []
+    assert not _in_schema(schema, "binning.no_such_key")  # the walk can fail
+
+
+@pytest.fixture(scope="module")
+def reduced_run(tmp_path_factory):
+    from movieproc.stages import delays, ingest, select
+
+    d = tmp_path_factory.mktemp("keys")
+    f = write_h5(d / "run.h5", run_datasets())
+    cfg = C.load(overrides=["compute.progress=false", "compute.workers=1", "selection.outliers.window=60"])
+    ingest.run({"files": [str(f)]}, d / "shots.zarr", cfg)
+    select.run({"shots": d / "shots.zarr"}, d / "selection.zarr", cfg)
+    delays.run({"shots": d / "shots.zarr"}, d / "delays.zarr", cfg)
+    return d, cfg
+
+
+def _set(config, key, value):
+    section, *rest = key.split(".")
+    node = config[section]
+    for part in rest[:-1]:
+        node = node[part]
+    node[rest[-1]] = value
+
+
+@pytest.mark.parametrize("stage, key, value", [
+    ("delays", "timing.sign", 2),
+    ("select", "differences.norm_q_range", [50.0, 60.0]),
+    ("select", "selection.outliers.threshold", 0.0),
+    ("select", "selection.outliers.window", 0),
+    ("bins", "binning.width_ps", 0.0),
+    ("bins", "binning.stop_ps", -5.0),
+    ("bins", "binning.count", 0),
+    ("bins", "binning.mode", "log"),
+    ("bins", "binning.edges_ps", [1.0, 1.0]),
+    ("difference", "differences.normalization", "median"),
+    ("difference", "differences.bootstrap", -1),
+])
+def test_a_core_error_from_a_config_value_names_the_config_key(reduced_run, tmp_path, stage, key, value):
+    # values the schema would refuse reach the stage directly: the core's own check names its
+    # parameter, and the stage's CONFIG_KEYS turn that into the key (which exists in the schema)
+    from movieproc.errors import ConfigError
+    from movieproc.stages import bins
+
+    d, cfg = reduced_run
+    if stage == "difference":
+        bins.run({"shots": d / "shots.zarr", "selection": d / "selection.zarr", "delays": d / "delays.zarr"},
+                 tmp_path / "bins.zarr", cfg)
+    bad = copy.deepcopy(cfg)
+    if key in ("binning.width_ps", "binning.stop_ps"):
+        _set(bad, "binning.mode", "width")
+        _set(bad, "binning.start_ps", 0.0)
+    if key == "binning.count":
+        _set(bad, "binning.mode", "population")
+    _set(bad, key, value)
+    inputs = {"shots": d / "shots.zarr", "selection": d / "selection.zarr", "delays": d / "delays.zarr",
+              "bins": tmp_path / "bins.zarr"}
+    with pytest.raises(ConfigError) as err:
+        importlib.import_module(f"movieproc.stages.{stage}").run(inputs, tmp_path / "out.zarr", bad)
+    assert err.value.key == key and _in_schema(C.load_schema(), key)
+    assert not (tmp_path / "out.zarr").exists()

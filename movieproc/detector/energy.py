@@ -157,6 +157,6 @@ def rescale_curves(curves, grid, q, scale):
     inside = (base >= 1) & (base + 2 <= grid.size - 1)
     idx = np.clip(base, 1, grid.size - 3)
     out = np.zeros(t.shape)
-    for offset, w in zip((-1, 0, 1, 2), weights):
+    for offset, w in zip((-1, 0, 1, 2), weights, strict=True):
         out += w * np.take_along_axis(curves, idx + offset, axis=1)
     return np.where(inside, out, np.nan)

@@ -31,6 +31,8 @@ import numba
 import numpy as np
 import scipy.sparse
 
+from . import anisotropy
+
 #: Frames processed together by the kernel (the vector width of the inner loop).
 LANES = 16
 #: Pixels per transposed tile.
@@ -126,18 +128,32 @@ class Integrated(NamedTuple):
 
     Attributes
     ----------
-    mean : ndarray (n, ng) or (n, S, ng) float64
-        Weighted mean corrected intensity around each grid point (NaN where
-        no pixel contributes).
-    count : ndarray, same shape
-        Effective number of valid pixels (sum of their weights).
-    variance : ndarray, same shape, or None
-        As requested from :func:`integrate`.
+    mean : ndarray (n, ng) float64
+        Weighted mean corrected intensity of the whole ring around each grid
+        point (with a P2 regressor: its isotropic part); NaN where no pixel
+        contributes.
+    count : ndarray (n, ng) float64
+        Effective number of valid pixels of the whole ring (sum of their weights).
+    variance : ndarray (n, ng) float64 or None
+        Variance of ``mean`` (:func:`mean_variance` over whole rings), when asked for.
+    p2 : ndarray (n, ng) float64 or None
+        P2 part of each ring, with a binning that has the P2 regressor.
+    sectors : ndarray (n, S, ng) float64 or None
+        Mean of each azimuthal sector, with a sectored binning (NaN where a
+        sector has no pixels).
+    sector_count : ndarray (n, S, ng) float64 or None
+        Effective number of valid pixels of each sector.
+    excluded : ndarray (n,) int64
+        Pixels of each frame left out beyond the static mask (non-finite or saturated).
     """
 
     mean: np.ndarray
     count: np.ndarray
     variance: np.ndarray | None
+    p2: np.ndarray | None
+    sectors: np.ndarray | None
+    sector_count: np.ndarray | None
+    excluded: np.ndarray
 
 
 def _moment_pairs(m: int):
@@ -444,7 +460,14 @@ def _derived(binning, lo, hi, dark):
 
 
 def integrate(frames, binning: Binning, *, variance=None) -> Integrated:
-    """Azimuthal average of each frame on the grid (channel 0 of the binning).
+    """Azimuthal average of each frame on the grid: whole rings, their P2 part and sectors.
+
+    One pass over the frames (:func:`bin_sums`) gives everything the binning
+    holds: the whole-ring mean (the sums over all sectors), with a P2
+    regressor (:func:`movieproc.detector.anisotropy.p2_regressor` as the only
+    extra channel) the isotropic and P2 parts of each ring
+    (:func:`movieproc.detector.anisotropy.solve`), and with sectors the mean
+    of each sector.
 
     Parameters
     ----------
@@ -452,45 +475,45 @@ def integrate(frames, binning: Binning, *, variance=None) -> Integrated:
         Raw frames, any integer or float dtype; not modified.
     binning : Binning
     variance : {None, "counting", "spread"}
-        ``"counting"``: variance of each mean from counting statistics, taking
-        the dark-subtracted values as photon counts (Var x = x):
-        sum w^2 (x - d) / F^2 / (sum w)^2. ``"spread"``: weighted variance of
-        the corrected pixel values around each grid point,
-        sum w y^2 / sum w - mean^2 with y = (x - d) / F.
+        Also compute the variance of each whole-ring mean,
+        :func:`mean_variance` with this mode. Not available with regressors
+        (the variance of the isotropic part of the P2 fit is not computed).
 
     Returns
     -------
     Integrated
-        ``mean``, ``count``, ``variance`` of shape (n, ng), or (n, S, ng) when
-        the binning has sectors.
+
+    Raises
+    ------
+    ValueError
+        On an unknown ``variance`` or one asked for with regressors.
     """
+    if variance not in (None, "counting", "spread"):
+        raise ValueError(f"variance must be None, 'counting' or 'spread', got {variance!r}")
+    if variance is not None and binning.n_channels > 1:
+        raise ValueError("variance must be None with regressors (the variance of the isotropic part of the "
+                         "P2 fit is not computed)")
+    if binning.n_channels > 2:
+        raise ValueError(f"binning has {binning.n_channels - 1} regressors; integrate takes none or the P2 one")
     flat = _as_frames(frames, binning.shape)
     res = _bin_sums_flat(flat, binning)
-    count = res.moments[:, 0]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = res.sums[:, 0] / count
-    mean = np.where(count > 0, mean, np.nan)
+    sums, moments = res.sums.sum(axis=2), res.moments.sum(axis=2)  # whole rings: (n, M, ng)
+    count = moments[:, 0]
+    p2 = None
+    if binning.n_channels == 2:
+        mean, p2 = anisotropy.solve(sums, moments)
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(count > 0, sums[:, 0] / count, np.nan)
     var = None
-    if variance == "counting":
-        w2 = _derived(binning, binning.scale ** 2 * (1 - binning.frac) ** 2, binning.scale ** 2 * binning.frac ** 2,
-                      binning.dark)
+    if variance is not None:
+        var = mean_variance(frames, binning, variance, sums=res, whole_rings=True)[:, 0]
+    sectors = sector_count = None
+    if binning.sector_edges is not None:
+        sector_count = res.moments[:, 0]
         with np.errstate(invalid="ignore", divide="ignore"):
-            var = _bin_sums_flat(flat, w2).sums[:, 0] / count ** 2
-    elif variance == "spread":
-        x = flat.astype(np.float32)
-        x[~(x < binning.saturation)] = np.nan
-        if binning.dark is not None:
-            x -= binning.dark.astype(np.float32)
-        sq = _derived(binning, binning.scale ** 2 * (1 - binning.frac), binning.scale ** 2 * binning.frac, None)
-        sq = dataclasses.replace(sq, saturation=np.inf)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            var = _bin_sums_flat(x * x, sq).sums[:, 0] / count - mean ** 2
-    elif variance is not None:
-        raise ValueError(f"variance must be None, 'counting' or 'spread', got {variance!r}")
-    if binning.sector_edges is None:
-        mean, count = mean[:, 0], count[:, 0]
-        var = None if var is None else var[:, 0]
-    return Integrated(mean, count, var)
+            sectors = np.where(sector_count > 0, res.sums[:, 0] / sector_count, np.nan)
+    return Integrated(mean, count, var, p2, sectors, sector_count, res.excluded)
 
 
 @numba.njit(nogil=True, cache=True)
@@ -522,7 +545,7 @@ def mean_variance(frames, binning: Binning, mode: str, *, sums: BinSums | None =
 
     The mean at grid point k is m = sum w y / sum w over the valid pixels
     around k, with y = (x - d) / F the corrected pixel values and w the
-    triangular weights (see :func:`integrate`).
+    triangular weights (see the module docstring).
 
     Parameters
     ----------
@@ -532,18 +555,16 @@ def mean_variance(frames, binning: Binning, mode: str, *, sums: BinSums | None =
     mode : {"counting", "spread"}
         ``"counting"``: the dark-subtracted values are photon counts
         (Var x = x - d, independent pixels), so
-        Var m = sum w^2 (x - d) / F^2 / (sum w)^2 (the same as
-        ``integrate(..., variance="counting")``). ``"spread"``: the pixels
+        Var m = sum w^2 (x - d) / F^2 / (sum w)^2. ``"spread"``: the pixels
         around k scatter with one common variance s^2, estimated from the
         frame itself by the weighted spread about the frame's own mean
         curve, linearly interpolated to each pixel,
         s^2 = sum w (y - m(pixel))^2 / sum w; then
         Var m = s^2 / (n_eff - 1) with n_eff = (sum w)^2 / sum w^2 (the
-        reliability-weights correction of a weighted spread). Unlike
-        ``integrate(..., variance="spread")`` (the spread about the grid
-        point's mean, formed as E y^2 - m^2) the values are centred before
-        squaring, so float32 sums keep their precision at high counts, and
-        the slope of the curve across the window adds little. NaN where
+        reliability-weights correction of a weighted spread). The values are
+        centred before squaring, so float32 sums keep their precision at
+        high counts, and the slope of the curve across the window adds
+        little. NaN where
         n_eff <= 1.
     sums : BinSums, optional
         :func:`bin_sums` of the same frames and binning, when already at hand

@@ -211,20 +211,21 @@ def read_table(info: RunInfo) -> dict:
     pid = table["pulse_id"]
     if pid.size > 1 and np.any(np.diff(pid) <= 0):
         bad = int(np.argmax(np.diff(pid) <= 0)) + 1
-        path, local = _where(info, bad)
+        path, local = shot_file(info, bad)
         raise InputError(f"{path}:shots/pulse_id", f"pulse_id {pid[bad]} after {pid[bad - 1]} at shot {local}",
                          "strictly increasing pulse ids across the run (files in name order)")
     for name in ("stage_delay", "pulse_energy"):
         finite = np.isfinite(table[name])
         if not finite.all():
             bad = int(np.argmin(finite))
-            path, local = _where(info, bad)
+            path, local = shot_file(info, bad)
             raise InputError(f"{path}:shots/{name}", f"a non-finite value at shot {local}",
                              "finite values for every shot")
     return table
 
 
-def _where(info: RunInfo, index: int):
+def shot_file(info: RunInfo, index: int):
+    """The file holding run shot ``index`` and the shot's index within that file."""
     off = info.offsets
     i = int(np.searchsorted(off, index, side="right") - 1)
     return info.files[i], int(index - off[i])

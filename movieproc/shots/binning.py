@@ -16,7 +16,12 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from ..errors import ConfigError, DataError
+from ..errors import DataError
+
+#: The ways :func:`make_edges` knows to place bin edges.
+MODES = ("width", "population", "edges")
+#: Rounding allowance when counting whole bins in a range (a fraction of a bin).
+BIN_ROUNDING = 1e-9
 
 
 def fixed_width_edges(delay, width, start=None, stop=None):
@@ -31,9 +36,14 @@ def fixed_width_edges(delay, width, start=None, stop=None):
     start, stop : float, optional
         First and last edge; default the finite delay range, with ``stop``
         extended to a whole number of bins.
+
+    Raises
+    ------
+    ValueError
+        Naming ``width`` or ``stop`` when they are unusable.
     """
-    if not width > 0:
-        raise ConfigError("binning.width_ps", f"{width}", "a positive width in ps")
+    if width is None or not width > 0:
+        raise ValueError(f"width must be a positive bin width in ps, got {width!r}")
     finite = np.asarray(delay, float)
     finite = finite[np.isfinite(finite)]
     if start is None or stop is None:
@@ -42,8 +52,8 @@ def fixed_width_edges(delay, width, start=None, stop=None):
         start = float(finite.min()) if start is None else start
         stop = float(finite.max()) if stop is None else stop
     if not stop > start:
-        raise ConfigError("binning.stop_ps", f"{stop}", f"a value above binning.start_ps = {start}")
-    n = int(np.ceil((stop - start) / width - 1e-9))
+        raise ValueError(f"stop must lie above start = {start} ps, got {stop}")
+    n = int(np.ceil((stop - start) / width - BIN_ROUNDING))
     return start + width * np.arange(max(n, 1) + 1)
 
 
@@ -78,28 +88,41 @@ def population_edges(delay, count):
     return edges
 
 
-def make_edges(delay, binning: dict):
-    """Bin edges (ps) from the ``binning`` config section.
+def make_edges(delay, mode="width", *, width=None, start=None, stop=None, count=None, edges=None):
+    """Bin edges, ps.
 
     Parameters
     ----------
     delay : ndarray (N,)
         Corrected delays of the shots to be binned, ps.
-    binning : dict
-        Keys ``mode`` (width | population | edges), ``width_ps``,
-        ``start_ps``, ``stop_ps``, ``count``, ``edges_ps``.
+    mode : {"width", "population", "edges"}
+        Fixed-width bins (:func:`fixed_width_edges` with ``width``, ``start``,
+        ``stop``), ``count`` equal-population bins (:func:`population_edges`),
+        or the given ``edges``.
+    width, start, stop : float, optional
+        Bin width and range, ps (mode "width").
+    count : int, optional
+        Number of bins (mode "population").
+    edges : sequence of float, optional
+        Strictly increasing edges, ps (mode "edges").
+
+    Raises
+    ------
+    ValueError
+        Naming the parameter that is unusable.
     """
-    mode = binning.get("mode", "width")
     if mode == "width":
-        return fixed_width_edges(delay, binning["width_ps"], binning.get("start_ps"), binning.get("stop_ps"))
+        return fixed_width_edges(delay, width, start, stop)
     if mode == "population":
-        return population_edges(delay, int(binning["count"]))
+        if count is None or int(count) < 1:
+            raise ValueError(f"count must be a positive number of bins, got {count!r}")
+        return population_edges(delay, int(count))
     if mode == "edges":
-        edges = np.asarray(binning.get("edges_ps"), float)
-        if edges.ndim != 1 or edges.size < 2 or np.any(np.diff(edges) <= 0):
-            raise ConfigError("binning.edges_ps", f"{binning.get('edges_ps')}", "at least two strictly increasing edges")
-        return edges
-    raise ConfigError("binning.mode", repr(mode), "one of width, population, edges")
+        given = np.asarray(edges if edges is not None else [], float)
+        if given.ndim != 1 or given.size < 2 or np.any(np.diff(given) <= 0):
+            raise ValueError(f"edges must be at least two strictly increasing values in ps, got {edges!r}")
+        return given
+    raise ValueError(f"mode must be one of {', '.join(MODES)}, got {mode!r}")
 
 
 def assign_bins(delay, edges):

@@ -17,29 +17,33 @@ REASONS = {
     "outlier": 16,           # curve far from the running median of its neighbours
 }
 
+#: Fewest shots of one kind (pump-on or pump-off) in a block for their per-q median and MAD
+#: to mean anything: below it, their outlier scores stay NaN and they are never flagged.
+MIN_SHOTS_TO_SCORE = 5
+
 #: 1.4826 * MAD estimates the standard deviation of normally distributed data
 #: (1 / Phi^-1(3/4); Hampel 1974, J. Am. Stat. Assoc. 69, 383).
 MAD_TO_SIGMA = 1.4826
 
 
-def pulse_energy_flags(pulse_energy, min=None, max=None, min_fraction_of_median=None):
+def pulse_energy_flags(pulse_energy, low=None, high=None, min_fraction_of_median=None):
     """Flags (N,) bool: True where the pulse energy is outside the window.
 
     Parameters
     ----------
     pulse_energy : array_like (N,)
         X-ray pulse energy per shot (any unit).
-    min, max : float, optional
+    low, high : float, optional
         Absolute limits in the same unit.
     min_fraction_of_median : float, optional
         Lower limit relative to the median pulse energy of the run.
     """
     e = np.asarray(pulse_energy, float)
     bad = ~np.isfinite(e)
-    if min is not None:
-        bad |= e < min
-    if max is not None:
-        bad |= e > max
+    if low is not None:
+        bad |= e < low
+    if high is not None:
+        bad |= e > high
     if min_fraction_of_median is not None:
         bad |= e < min_fraction_of_median * np.nanmedian(e)
     return bad
@@ -108,8 +112,10 @@ def robust_outliers(scores, threshold):
     scores : array_like (N,)
         From :func:`outlier_scores`; NaN scores are never flagged.
     threshold : float
-        In units of 1.4826 * MAD of the scores.
+        In units of 1.4826 * MAD of the scores (> 0).
     """
+    if not threshold > 0:
+        raise ValueError(f"threshold must be positive (robust sigmas), got {threshold!r}")
     s = np.asarray(scores, float)
     if not np.isfinite(s).any():
         return np.zeros(s.shape, bool)
@@ -129,3 +135,29 @@ def reason_counts(flags):
     out["kept"] = int(np.count_nonzero(flags == 0))
     out["dropped"] = out["total"] - out["kept"]
     return out
+
+
+def block_scores(curves, pump_on):
+    """Outlier scores of one block of shots, pump-on and pump-off each against their own median.
+
+    A strong pump signal is then never mistaken for an outlier. A kind with
+    fewer than :data:`MIN_SHOTS_TO_SCORE` shots in the block is not scored.
+
+    Parameters
+    ----------
+    curves : array_like (n, nq)
+        Normalized curves of the block.
+    pump_on : array_like (n,) bool
+
+    Returns
+    -------
+    ndarray (n,) float64
+        :func:`outlier_scores`; NaN for shots not scored.
+    """
+    pump_on = np.asarray(pump_on, bool)
+    scores = np.full(pump_on.size, np.nan)
+    for state in (True, False):
+        same = pump_on == state
+        if same.sum() >= MIN_SHOTS_TO_SCORE:
+            scores[same] = outlier_scores(np.asarray(curves)[same])
+    return scores

@@ -14,6 +14,11 @@ from __future__ import annotations
 import numpy as np
 from scipy import optimize, special
 
+#: Femtoseconds per picosecond (calibrations are in fs, delays in ps).
+FS_PER_PS = 1000.0
+#: Fewest shots with a finite delay for :func:`onset_width` to fit a step.
+MIN_ONSET_SHOTS = 10
+
 
 def timing_correction(edge, calibration_fs, edge_at_time_zero=0.0):
     """Timing-tool correction in fs for edge positions in px.
@@ -64,11 +69,11 @@ def corrected_delay(stage_delay, edge=None, calibration_fs=(0.0, 1.0), time_zero
         Corrected delay, ps; NaN where the timing tool is used and found no edge.
     """
     if sign not in (1, -1):
-        raise ValueError("sign must be +1 or -1")
+        raise ValueError(f"sign must be +1 or -1, got {sign!r}")
     delay = np.asarray(stage_delay, dtype=float) - float(time_zero)
     if not use_timing_tool or edge is None:
         return delay
-    return delay + sign * timing_correction(edge, calibration_fs, edge_at_time_zero) / 1000.0
+    return delay + sign * timing_correction(edge, calibration_fs, edge_at_time_zero) / FS_PER_PS
 
 
 def onset_width(delay, values, fraction=(0.1, 0.9)):
@@ -99,8 +104,9 @@ def onset_width(delay, values, fraction=(0.1, 0.9)):
     values = np.asarray(values, float)
     ok = np.isfinite(delay) & np.isfinite(values)
     x, y = delay[ok], values[ok]
-    if x.size < 10:
-        raise ValueError("need at least 10 shots with finite delay to measure an onset")
+    if x.size < MIN_ONSET_SHOTS:
+        raise ValueError(f"delay has {x.size} finite values with finite signal: at least {MIN_ONSET_SHOTS} are "
+                         "needed to measure an onset")
     lo, hi = np.percentile(y, [5, 95])
     order = np.argsort(x)
     cum = np.cumsum(y[order] - lo) / max(np.sum(y[order] - lo), 1e-300)
@@ -148,3 +154,26 @@ def sign_check(stage_delay, edge, values, calibration_fs, time_zero=0.0, edge_at
         out[name] = onset_width(d[ok], np.asarray(values)[ok])[0]
     out["best"] = 1 if out["plus"] < out["minus"] else -1
     return out
+
+
+def projected_signal(on_curves, reference_curves, after):
+    """Each shot's difference projected on the mean difference of the shots after the onset.
+
+    Parameters
+    ----------
+    on_curves : ndarray (n, nq)
+        Normalized pump-on curves.
+    reference_curves : ndarray (n, k, nq)
+        Normalized curves of each shot's k references.
+    after : ndarray (n,) bool
+        Shots whose mean difference defines the signal (well after time zero).
+
+    Returns
+    -------
+    ndarray (n,) float64
+        d_i . s / (s . s) with d_i the shot's difference and s the signal:
+        about 1 after the onset, 0 before it.
+    """
+    differences = np.asarray(on_curves, float) - np.asarray(reference_curves, float).mean(axis=1)
+    signal = differences[np.asarray(after, bool)].mean(axis=0)
+    return differences @ signal / (signal @ signal)

@@ -11,9 +11,13 @@ references are shared).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from ..errors import DataError
+from ..shots.binning import BinSums, accumulate
+from .bootstrap import replicate_sums
 
 
 def nearest_references(pulse_id, on, off, k):
@@ -48,7 +52,7 @@ def nearest_references(pulse_id, on, off, k):
     off_idx = np.flatnonzero(off)
     if off_idx.size < k:
         raise DataError(f"{off_idx.size} usable pump-off shots; each pump-on shot needs {k} references "
-                        "(check shots/pump_on, the selection cuts, or lower differences.references)")
+                        "(check shots/pump_on and the selection cuts, or ask for fewer references)")
     off_pid = pid[off_idx]
     pos = np.searchsorted(off_pid, pid[on_idx])
     cand = pos[:, None] + np.arange(-k, k)[None, :]
@@ -124,3 +128,62 @@ def bin_errors(variance, count, k, shared):
     scale = (1.0 + np.asarray(shared, float)[:, None]) / (1.0 + 1.0 / k)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.sqrt(np.asarray(variance) * scale / count)
+
+
+@dataclass
+class DifferenceSums:
+    """Per-bin sums of per-shot differences, pump-on and reference curves, streamed over chunks.
+
+    Attributes
+    ----------
+    difference, on, reference : BinSums
+        Of the per-shot differences, the pump-on curves and the reference
+        means, (nbins, nq).
+    replicate_weights : ndarray (R, nbins) float64
+        Bootstrap replicates' pump-on weight per bin (R = 0 without bootstrap).
+    replicate_sums : ndarray (R, nbins, nq) float64
+        Bootstrap replicates' weighted sums of the differences.
+    """
+
+    difference: BinSums
+    on: BinSums
+    reference: BinSums
+    replicate_weights: np.ndarray
+    replicate_sums: np.ndarray
+
+    def __add__(self, other: "DifferenceSums") -> "DifferenceSums":
+        return DifferenceSums(self.difference + other.difference, self.on + other.on,
+                              self.reference + other.reference, self.replicate_weights + other.replicate_weights,
+                              self.replicate_sums + other.replicate_sums)
+
+
+def difference_sums(bin_index, on_curves, reference_curves, nbins, on_weights=None,
+                    reference_weights=None) -> DifferenceSums:
+    """Per-bin sums for a chunk of pump-on shots, each referenced to the mean of its k references.
+
+    Parameters
+    ----------
+    bin_index : array_like (n,) int
+        Bin of each pump-on shot (-1: not binned).
+    on_curves : ndarray (n, nq)
+        Normalized pump-on curves.
+    reference_curves : ndarray (n, k, nq)
+        Normalized curves of each shot's references (:func:`nearest_references`).
+    nbins : int
+    on_weights, reference_weights : ndarray (R, n) and (R, n, k), optional
+        Bootstrap weights (:func:`movieproc.signals.bootstrap.poisson_weights`
+        of these shots); default no replicates.
+
+    Returns
+    -------
+    DifferenceSums
+    """
+    reference = np.asarray(reference_curves).mean(axis=1, dtype=np.float64)
+    difference = on_curves - reference
+    nq = reference.shape[1]
+    if on_weights is None or len(on_weights) == 0:
+        weights, sums = np.zeros((0, nbins)), np.zeros((0, nbins, nq))
+    else:
+        weights, sums = replicate_sums(bin_index, on_weights, reference_weights, on_curves, reference_curves, nbins)
+    return DifferenceSums(accumulate(bin_index, difference, nbins), accumulate(bin_index, on_curves, nbins),
+                          accumulate(bin_index, reference, nbins), weights, sums)

@@ -10,17 +10,28 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import ConfigError, DataError
+from ..errors import DataError
+
+#: The normalization modes :func:`normalization_factors` knows.
+MODES = ("window", "total", "none")
 
 
 def window_mask(q, q_range):
-    """Boolean mask of the q points inside [q_min, q_max] (1/Å)."""
+    """Boolean mask (nq,) of the q points inside ``q_range`` = [low, high] (1/Å).
+
+    Raises
+    ------
+    ValueError
+        Naming ``q_range`` when no q point lies inside it.
+    """
     q = np.asarray(q, float)
-    lo, hi = q_range
-    mask = (q >= lo) & (q <= hi)
+    if q_range is None:
+        raise ValueError("q_range must be [low, high] in 1/Å, got None")
+    low, high = q_range
+    mask = (q >= low) & (q <= high)
     if not mask.any():
-        raise ConfigError("differences.norm_q_range", f"[{lo}, {hi}] 1/Å",
-                          f"a window overlapping the data's q range [{q[0]:.3g}, {q[-1]:.3g}] 1/Å")
+        raise ValueError(f"q_range [{low}, {high}] 1/Å holds no q point: expected a window overlapping the "
+                         f"data's q range [{q[0]:.3g}, {q[-1]:.3g}] 1/Å")
     return mask
 
 
@@ -37,6 +48,13 @@ def normalization_factors(curves, q, mode="window", q_range=None):
         Mean over ``q_range``, mean over all q, or no normalization (1).
     q_range : (float, float)
         Window in 1/Å for ``mode="window"``.
+
+    Raises
+    ------
+    ValueError
+        Naming ``mode`` or ``q_range`` when they are unusable.
+    DataError
+        When a shot's factor is not positive.
     """
     curves = np.asarray(curves)
     if mode == "none":
@@ -46,7 +64,7 @@ def normalization_factors(curves, q, mode="window", q_range=None):
     elif mode == "window":
         factors = curves[:, window_mask(q, q_range)].mean(axis=1, dtype=np.float64)
     else:
-        raise ConfigError("differences.normalization", repr(mode), "one of window, total, none")
+        raise ValueError(f"mode must be one of {', '.join(MODES)}, got {mode!r}")
     if np.any(~(factors > 0)):
         bad = int(np.argmax(~(factors > 0)))
         raise DataError(f"shot {bad} has a normalization factor of {factors[bad]!r} "

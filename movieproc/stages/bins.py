@@ -3,33 +3,48 @@
 from __future__ import annotations
 
 import logging
+from pathlib import Path
 
 import numpy as np
 
 from ..errors import DataError
 from ..io import shotstore, store
 from ..shots.binning import bin_delays, make_edges
-from .common import Warnings, now
+from .common import Warnings, config_errors, now
 
 log = logging.getLogger("movieproc.bin")
 
+#: Core parameters set from the config, and their config keys.
+CONFIG_KEYS = {"mode": "binning.mode", "width": "binning.width_ps", "start": "binning.start_ps",
+               "stop": "binning.stop_ps", "count": "binning.count", "edges": "binning.edges_ps"}
 
-def run(shots_path, selection_path, delays_path, out, config: dict):
+
+def run(inputs: dict, out: Path, config: dict) -> None:
     """Assign kept pump-on shots to delay bins.
 
     Writes ``out`` (zarr): ``edges`` (edge) ps, ``index`` (shot) int64 bin of
     each shot (-1: pump-off, dropped, no delay or outside the bins),
     ``n_shots``, ``delay_mean``, ``delay_spread`` (bin).
+
+    Parameters
+    ----------
+    inputs : dict
+        ``shots``, ``selection``, ``delays``: the stores of those stages.
+    out : Path
+        Store to write (zarr).
+    config : dict
+        Sections ``binning`` and ``compute``.
     """
     binning = config["binning"]
     warnings = Warnings("bin", log)
-    shots = shotstore.open_shots(shots_path)
-    keep = store.read(store.open_group(selection_path, "selection"), "keep", selection_path)
-    delay = store.read(store.open_group(delays_path, "delays"), "delay", delays_path)
+    shots = shotstore.open_shots(inputs["shots"])
+    keep = store.read(store.open_group(inputs["selection"], "selection"), "keep", inputs["selection"])
+    delay = store.read(store.open_group(inputs["delays"], "delays"), "delay", inputs["delays"])
     use = keep & shots.table["pump_on"]
-    d = np.where(use, delay, np.nan)
-    edges = make_edges(d[use], binning)
-    bins = bin_delays(d[use], edges)
+    with config_errors(CONFIG_KEYS, config):
+        edges = make_edges(delay[use], binning["mode"], width=binning.get("width_ps"), start=binning.get("start_ps"),
+                           stop=binning.get("stop_ps"), count=binning.get("count"), edges=binning.get("edges_ps"))
+    bins = bin_delays(delay[use], edges)
     index = np.full(shots.n_shots, -1, np.int64)
     index[np.flatnonzero(use)] = bins.index
     if np.all(bins.count == 0):
@@ -41,7 +56,8 @@ def run(shots_path, selection_path, delays_path, out, config: dict):
         warnings.add(f"{edges.size - 1} equal-population bins instead of binning.count = {binning['count']}: "
                      "many shots share the same delays (nominal stage positions?)")
     if bins.n_nan:
-        warnings.add(f"{bins.n_nan} kept pump-on shots have no corrected delay (no timing-tool edge) and are not binned")
+        warnings.add(f"{bins.n_nan} kept pump-on shots have no corrected delay (no timing-tool edge) "
+                     "and are not binned")
     if bins.n_outside:
         warnings.add(f"{bins.n_outside} kept pump-on shots lie outside the bin edges "
                      f"[{edges[0]:.4g}, {edges[-1]:.4g}] ps and are not binned")

@@ -3,43 +3,69 @@
 from __future__ import annotations
 
 import logging
+from pathlib import Path
 
 import numpy as np
 
 from ..errors import DataError
 from ..io import shotstore, store
-from ..shots.timing import corrected_delay, sign_check
-from .common import Warnings, now
+from ..shots.timing import FS_PER_PS, corrected_delay, projected_signal, sign_check
+from ..signals.differences import nearest_references
+from ..signals.normalize import normalize
+from .common import Warnings, config_errors, now
 
 log = logging.getLogger("movieproc.time")
 
+#: Core parameters set from the config, and their config keys.
+CONFIG_KEYS = {"sign": "timing.sign", "calibration_fs": "timing.calibration_fs",
+               "mode": "differences.normalization", "q_range": "differences.norm_q_range"}
+#: A timing-tool correction spread above this (fs rms) is far beyond any set-up's jitter
+#: (tens to a few hundred fs): most likely a wrong calibration or edge unit.
+SUSPECT_CORRECTION_RMS_FS = 1000.0
+#: Fewest pump-on shots near time zero for the sign check's onset fit to be worth reading.
+MIN_SIGN_CHECK_SHOTS = 50
+#: Fewest shots after the onset to define the signal the sign check projects on.
+MIN_SIGNAL_SHOTS = 10
+#: Shots later than this fraction of the check window define the signal: clear of the onset.
+SIGNAL_AFTER_FRACTION = 0.5
 
-def run(shots_path, out, config: dict):
+
+def run(inputs: dict, out: Path, config: dict) -> None:
     """Write ``out`` (zarr) with ``delay`` (shot), the corrected delay in ps.
 
     NaN where the timing tool is in use and found no edge for that shot.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``shots``: the shots store.
+    out : Path
+        Store to write (zarr).
+    config : dict
+        Sections ``timing`` and ``compute``.
     """
-    tim = config["timing"]
+    timing = config["timing"]
     warnings = Warnings("time", log)
-    shots = shotstore.open_shots(shots_path)
-    t = shots.table
-    delay = corrected_delay(t["stage_delay"], t["timing_edge"], tim["calibration_fs"], tim["time_zero_ps"],
-                            tim["sign"], tim["edge_at_time_zero_px"], tim["use_timing_tool"])
-    nominal = t["stage_delay"] - tim["time_zero_ps"]
-    corr = delay - nominal
-    finite = np.isfinite(corr)
-    rms = float(np.std(corr[finite]) * 1000) if finite.any() else float("nan")
+    table = shotstore.open_shots(inputs["shots"]).table
+    with config_errors(CONFIG_KEYS, config):
+        delay = corrected_delay(table["stage_delay"], table["timing_edge"], timing["calibration_fs"],
+                                timing["time_zero_ps"], timing["sign"], timing["edge_at_time_zero_px"],
+                                timing["use_timing_tool"])
+    correction = delay - (table["stage_delay"] - timing["time_zero_ps"])
+    finite = np.isfinite(correction)
+    rms = float(np.std(correction[finite]) * FS_PER_PS) if finite.any() else float("nan")
     log.info("corrected delays: %d shots, %d without a timing correction; correction rms %.1f fs",
              delay.size, int((~finite).sum()), rms)
-    if tim["use_timing_tool"] and finite.any() and rms > 1000:
-        warnings.add(f"timing-tool correction has an rms of {rms:.0f} fs: check timing.calibration_fs and the edge units")
+    if timing["use_timing_tool"] and finite.any() and rms > SUSPECT_CORRECTION_RMS_FS:
+        warnings.add(f"timing-tool correction has an rms of {rms:.0f} fs: check timing.calibration_fs "
+                     "and the edge units")
     with store.atomic_path(out) as tmp:
-        g = store.new_group(tmp, {"timing": tim, "correction_rms_fs": rms, "written": now(),
+        g = store.new_group(tmp, {"timing": timing, "correction_rms_fs": rms, "written": now(),
                                   "warnings": list(warnings),
                                   "convention": "delay = stage_delay - time_zero + sign * (P(edge) - P(edge0)) / 1000; "
                                                 "positive delay: probe after pump"})
         store.write_array(g, "delay", delay, ["shot"], units="ps")
-        store.write_array(g, "correction", corr * 1000, ["shot"], units="fs")
+        store.write_array(g, "correction", correction * FS_PER_PS, ["shot"], units="fs")
 
 
 def check_sign(shots_path, selection_path, config: dict, window_ps=1.0):
@@ -47,40 +73,44 @@ def check_sign(shots_path, selection_path, config: dict, window_ps=1.0):
 
     Each kept pump-on shot with a nominal delay within ``window_ps`` of time zero
     is referenced to its nearest kept pump-off shots (as in the ``difference``
-    stage) and projected on the mean difference of the shots after time zero:
-    a scalar that steps at time zero. Its onset width is measured with nominal
-    delays and with both signs of the correction.
+    stage) and projected on the mean difference of the shots after time zero
+    (:func:`movieproc.shots.timing.projected_signal`): a scalar that steps at
+    time zero. Its onset width is measured with nominal delays and with both
+    signs of the correction.
+
+    Parameters
+    ----------
+    shots_path, selection_path : path
+        The shots and selection stores.
+    config : dict
+        Sections ``timing`` and ``differences``.
+    window_ps : float
+        Half-width of the delay window around time zero, ps.
 
     Returns
     -------
     dict
         As :func:`movieproc.shots.timing.sign_check`, plus ``shots`` used.
     """
-    import numpy as np
-
-    from ..signals.differences import nearest_references
-    from ..signals.normalize import normalize
-
-    tim, dcfg = config["timing"], config["differences"]
+    timing, differences = config["timing"], config["differences"]
     shots = shotstore.open_shots(shots_path)
-    t = shots.table
+    table = shots.table
     keep = store.read(store.open_group(selection_path, "selection"), "keep", selection_path)
-    nominal = t["stage_delay"] - tim["time_zero_ps"]
-    near = keep & t["pump_on"] & (np.abs(nominal) <= window_ps) & np.isfinite(t["timing_edge"])
-    off = keep & ~t["pump_on"]
-    refs, _ = nearest_references(t["pulse_id"], near, off, dcfg["references"])
+    nominal = table["stage_delay"] - timing["time_zero_ps"]
+    near = keep & table["pump_on"] & (np.abs(nominal) <= window_ps) & np.isfinite(table["timing_edge"])
+    refs, _ = nearest_references(table["pulse_id"], near, keep & ~table["pump_on"], differences["references"])
     idx = np.flatnonzero(near)
-    if idx.size < 50:
+    if idx.size < MIN_SIGN_CHECK_SHOTS:
         raise DataError(f"{idx.size} kept pump-on shots within {window_ps} ps of time zero: too few to check the sign")
+    after = nominal[idx] > SIGNAL_AFTER_FRACTION * window_ps
+    if after.sum() < MIN_SIGNAL_SHOTS:
+        raise DataError(f"too few shots later than {SIGNAL_AFTER_FRACTION * window_ps} ps to define the signal "
+                        "for the sign check")
     rows = np.unique(np.concatenate([idx, refs.ravel()]))
-    curves = normalize(shots.rows(rows), shots.q, dcfg["normalization"], dcfg["norm_q_range"])
-    d = curves[np.searchsorted(rows, idx)] - curves[np.searchsorted(rows, refs)].mean(axis=1)
-    after = nominal[idx] > 0.5 * window_ps
-    if after.sum() < 10:
-        raise DataError(f"too few shots later than {0.5 * window_ps} ps to define the signal for the sign check")
-    template = d[after].mean(axis=0)
-    values = d @ template / (template @ template)
-    res = sign_check(t["stage_delay"][idx], t["timing_edge"][idx], values, tim["calibration_fs"],
-                     tim["time_zero_ps"], tim["edge_at_time_zero_px"])
+    with config_errors(CONFIG_KEYS, config):
+        curves = normalize(shots.rows(rows), shots.q, differences["normalization"], differences["norm_q_range"])
+        values = projected_signal(curves[np.searchsorted(rows, idx)], curves[np.searchsorted(rows, refs)], after)
+        res = sign_check(table["stage_delay"][idx], table["timing_edge"][idx], values, timing["calibration_fs"],
+                         timing["time_zero_ps"], timing["edge_at_time_zero_px"])
     res["shots"] = int(idx.size)
     return res

@@ -7,33 +7,44 @@ integrated by the ``integrate`` stage, which writes the same store.
 from __future__ import annotations
 
 import logging
+from functools import partial
+from pathlib import Path
 
 import numpy as np
 
 from ..io import runfile, shotstore, store
 from ..parallel import chunk_ranges, map_ranges
-from .common import Warnings, now, versions
+from .common import Warnings, config_errors, now, versions
 
 log = logging.getLogger("movieproc.ingest")
 
+#: Core parameters set from the config, and their config keys.
+CONFIG_KEYS = {"chunk": "compute.chunk_shots", "scheduler": "compute.scheduler"}
 
-def run(files, out, config: dict):
+
+def _copy_range(start, stop, info, target):
+    """Validate and copy the curves of shots [start, stop)."""
+    target[start:stop] = runfile.read_curves(info, start, stop)
+
+
+def run(inputs: dict, out: Path, config: dict) -> None:
     """Read and validate run files and write the shots store ``out``.
 
     Parameters
     ----------
-    files : list of str
-        Run files (HDF5, input contract of docs/DESIGN.md section 4).
-    out : path
+    inputs : dict
+        ``files``: the run files (HDF5, input contract of docs/DESIGN.md section 4).
+    out : Path
         Shots store to write (zarr).
     config : dict
-        The validated config (sections ``compute`` and, in frames mode, ``detector``).
+        Sections ``compute`` and, for frames-mode runs, ``detector``.
     """
-    info = runfile.inspect_run(files)
+    info = runfile.inspect_run(inputs["files"])
     if info.mode == "frames":
         from . import integrate
 
-        return integrate.run([str(f) for f in info.files], out, config["detector"], config["compute"])
+        integrate.run({"files": list(info.files)}, out, config)
+        return
     compute = config["compute"]
     warnings = Warnings("ingest", log)
     table = runfile.read_table(info)
@@ -49,14 +60,10 @@ def run(files, out, config: dict):
         "checksums": {str(f): shotstore.file_checksum(f) for f in info.files},
         "counts": info.counts, "written": now(), "versions": versions(), "warnings": warnings,
     }
-    with store.atomic_path(out) as tmp:
+    with store.atomic_path(out) as tmp, config_errors(CONFIG_KEYS, config):
         group = shotstore.create(tmp, info.q, table, compute["chunk_shots"], attrs=attrs)
-        target = group["curves"]
-
-        def copy(start, stop):
-            target[start:stop] = runfile.read_curves(info, start, stop)
-
-        map_ranges(copy, chunk_ranges(info.n_shots, compute["chunk_shots"]), compute["workers"],
+        work = partial(_copy_range, info=info, target=group["curves"])
+        map_ranges(work, chunk_ranges(info.n_shots, compute["chunk_shots"]), compute["workers"],
                    compute["scheduler"], compute["progress"], "ingest")
         store.update_attrs(group, {"warnings": list(warnings)})
     log.info("wrote %s", out)

@@ -19,13 +19,11 @@ if config["run"].get("generate"):
 
 rule ingest:
     input:
-        config["run"]["files"],
+        files=config["run"]["files"],
     output:
         zstore("shots"),
     params:
-        section("detector"),
+        config=section("detector"),
     threads: workflow.cores
     run:
-        from movieproc.stages import ingest
-
-        run_stage(ingest.run, list(input), folder(output[0]), config)
+        stage("ingest", input, output, params.config)

@@ -7,12 +7,11 @@ rule select:
     output:
         zstore("selection"),
     params:
-        section("selection", "differences"),
+        # the outlier scores compare normalized curves: only the normalization of the differences
+        config=section("selection", "differences.normalization", "differences.norm_q_range"),
     threads: workflow.cores
     run:
-        from movieproc.stages import select
-
-        run_stage(select.run, folder(input.shots), folder(output[0]), config)
+        stage("select", input, output, params.config)
 
 
 rule time:
@@ -21,11 +20,9 @@ rule time:
     output:
         zstore("delays"),
     params:
-        section("timing"),
+        config=section("timing"),
     run:
-        from movieproc.stages import delays
-
-        run_stage(delays.run, folder(input.shots), folder(output[0]), config)
+        stage("delays", input, output, params.config)
 
 
 rule bin:
@@ -36,11 +33,9 @@ rule bin:
     output:
         zstore("bins"),
     params:
-        section("binning"),
+        config=section("binning"),
     run:
-        from movieproc.stages import bins
-
-        run_stage(bins.run, folder(input.shots), folder(input.selection), folder(input.delays), folder(output[0]), config)
+        stage("bins", input, output, params.config)
 
 
 rule difference:
@@ -51,9 +46,7 @@ rule difference:
     output:
         zstore("binned"),
     params:
-        section("differences", "binning"),
+        config=section("differences", "binning.min_shots"),
     threads: workflow.cores
     run:
-        from movieproc.stages import difference
-
-        run_stage(difference.run, folder(input.shots), folder(input.selection), folder(input.bins), folder(output[0]), config)
+        stage("difference", input, output, params.config)
