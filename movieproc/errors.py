@@ -8,7 +8,11 @@ from __future__ import annotations
 
 
 class MovieprocError(Exception):
-    """Base class of all errors raised by movieproc on bad input or state."""
+    """Base class of all errors raised by movieproc on bad input or state.
+
+    Every subclass pickles to itself with the same message and fields (errors
+    cross process boundaries when stages run on dask workers).
+    """
 
 
 class InputError(MovieprocError):
@@ -28,6 +32,10 @@ class InputError(MovieprocError):
         self.source, self.found, self.expected = str(source), found, expected
         super().__init__(f"{source}: found {found}; expected {expected}")
 
+    def __reduce__(self):
+        # rebuilt from the fields (a dask worker or another process gets the same error back)
+        return type(self), (self.source, self.found, self.expected)
+
 
 class ConfigError(MovieprocError):
     """A configuration value is missing, of the wrong type or inconsistent.
@@ -46,7 +54,14 @@ class ConfigError(MovieprocError):
         self.key, self.found, self.expected = key, found, expected
         super().__init__(f"config key '{key}': found {found}; expected {expected}")
 
+    def __reduce__(self):
+        return type(self), (self.key, self.found, self.expected)
+
 
 class DataError(MovieprocError):
     """The data, though well-formed, cannot give a meaningful result
     (no pump-off shots, every shot cut, too few delays for a fit...)."""
+
+
+class WorkflowFailed(MovieprocError):
+    """A stage of the workflow failed (its error is in the log above)."""
