@@ -138,7 +138,8 @@ def validate(config: dict) -> dict:
     """
     config = copy.deepcopy(config or {})
     validator = _Validator(load_schema())
-    errors = sorted(validator.iter_errors(config), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(validator.iter_errors(config),
+                    key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         err = errors[0]
         key = ".".join(str(p) for p in err.absolute_path) or "(top level)"
@@ -183,8 +184,9 @@ def _check_consistency(config: dict):
     if b.get("mode") == "edges":
         edges = b.get("edges_ps")
         if not edges:
-            raise ConfigError("binning.edges_ps", "no edges", "a list of at least two increasing edges (ps) in edges mode")
-        if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:])):
+            raise ConfigError("binning.edges_ps", "no edges",
+                              "a list of at least two increasing edges (ps) in edges mode")
+        if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:], strict=False)):
             raise ConfigError("binning.edges_ps", f"{edges}", "strictly increasing edges")
     model = config.get("model", {})
     if model.get("anomalous") and model.get("photon_energy_kev") is None:

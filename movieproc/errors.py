@@ -6,6 +6,8 @@ found and what was expected, so a user can fix the input without reading code.
 
 from __future__ import annotations
 
+import os
+
 
 class MovieprocError(Exception):
     """Base class of all errors raised by movieproc on bad input or state.
@@ -20,7 +22,7 @@ class InputError(MovieprocError):
 
     Parameters
     ----------
-    source : str
+    source : str or path
         File (and, where known, dataset or frame) where the problem is.
     found : str
         What was found.
@@ -28,7 +30,7 @@ class InputError(MovieprocError):
         What the contract expects.
     """
 
-    def __init__(self, source: str, found: str, expected: str):
+    def __init__(self, source: str | os.PathLike, found: str, expected: str):
         self.source, self.found, self.expected = str(source), found, expected
         super().__init__(f"{source}: found {found}; expected {expected}")
 

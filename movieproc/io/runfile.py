@@ -210,7 +210,7 @@ def inspect_run(paths) -> RunInfo:
         raise InputError("run.files", "an empty list", "at least one HDF5 run file")
     parts = [_inspect_file(path) for path in files]
     first = parts[0]
-    for path, part in zip(files[1:], parts[1:]):
+    for path, part in zip(files[1:], parts[1:], strict=True):
         if part.mode != first.mode:
             raise InputError(path, f"{part.mode} data", f"{first.mode} data like {files[0]}")
         if part.mode == "frames" and part.frame_shape != first.frame_shape:
@@ -227,7 +227,7 @@ def inspect_run(paths) -> RunInfo:
                    data_dtype=np.dtype(parts[-1].dtype), optional=optional)
 
 
-def read_table(info: RunInfo) -> dict:
+def read_table(info: RunInfo, check: bool = True) -> dict:
     """Read and concatenate the per-shot table of a run.
 
     Returns
@@ -240,8 +240,8 @@ def read_table(info: RunInfo) -> dict:
     Raises
     ------
     InputError
-        On pulse ids that are not increasing, or non-finite stage delays or
-        pulse energies.
+        With ``check`` (the default): on pulse ids that are not increasing, or
+        non-finite stage delays or pulse energies.
     """
     parts = {name: [] for name in SHOT_FIELDS if SHOT_FIELDS[name][0] or name in info.optional}
     for path in info.files:
@@ -258,6 +258,12 @@ def read_table(info: RunInfo) -> dict:
         else:
             arr = arr.astype(np.float64)
         table[name] = arr
+    if check:
+        _check_table(info, table)
+    return table
+
+
+def _check_table(info: RunInfo, table: dict):
     pid = table["pulse_id"]
     if pid.size > 1 and np.any(np.diff(pid) <= 0):
         bad = int(np.argmax(np.diff(pid) <= 0)) + 1
@@ -271,7 +277,6 @@ def read_table(info: RunInfo) -> dict:
             path, local = _where(info, bad)
             raise InputError(f"{path}:shots/{name}", f"a non-finite value at shot {local}",
                              "finite values for every shot")
-    return table
 
 
 def _read(h5, key: str, path: Path, index):
@@ -305,9 +310,19 @@ def read_curves(info: RunInfo, start: int, stop: int) -> np.ndarray:
             finite = np.isfinite(block)
             if not finite.all():
                 row, col = np.argwhere(~finite)[0]
-                raise InputError(f"{path}:curves", f"a non-finite value {block[row, col]} at shot {lo + row}, q index {col}",
+                raise InputError(f"{path}:curves",
+                                 f"a non-finite value {block[row, col]} at shot {lo + row}, q index {col}",
                                  "finite intensities (mask bad points before writing curves)")
         out[g - start:g - start + (hi - lo)] = block
+    return out
+
+
+def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
+    """Read curves of shots [start, stop) as float32 (n, nq) without checking their values."""
+    out = np.empty((stop - start, info.q.size), dtype=np.float32)
+    for path, lo, hi, g in info.locate(start, stop):
+        with _open(path) as h5:
+            out[g - start:g - start + (hi - lo)] = _read(h5, "curves", path, slice(lo, hi))
     return out
 
 
