@@ -185,7 +185,9 @@ def check_content(info, config: dict) -> list[Problem]:
 
 def missing_geometry(raw: dict) -> list[str]:
     """Geometry keys (``detector.*``) not given explicitly in a raw, unvalidated config."""
-    detector = raw.get("detector") if isinstance(raw.get("detector"), dict) else {}
+    detector = raw.get("detector")
+    if not isinstance(detector, dict):
+        detector = {}
     return [f"detector.{k}" for k in GEOMETRY_KEYS if detector.get(k) is None]
 
 

@@ -140,6 +140,7 @@ def _shot_fields(h5, path: Path):
         elif ds.shape[0] != n:
             raise InputError(f"{path}:{key}", f"length {ds.shape[0]}", f"length {n}, the same as shots/pulse_id")
         present.add(name)
+    assert n is not None  # shots/pulse_id is required, so its length was read
     return int(n), present
 
 
@@ -216,7 +217,8 @@ def inspect_run(paths) -> RunInfo:
         if part.mode == "frames" and part.frame_shape != first.frame_shape:
             raise InputError(f"{path}:frames", f"frames of shape {part.frame_shape}",
                              f"the frame shape {first.frame_shape} of {files[0]}")
-        if part.mode == "curves" and (part.q.shape != first.q.shape or not np.allclose(first.q, part.q, rtol=1e-9)):
+        if part.q is not None and first.q is not None and (
+                part.q.shape != first.q.shape or not np.allclose(first.q, part.q, rtol=1e-9)):
             raise InputError(f"{path}:q", "a q axis different from the first file's", f"the q axis of {files[0]}")
     counts = [p.n for p in parts]
     if sum(counts) == 0:
@@ -243,7 +245,7 @@ def read_table(info: RunInfo, check: bool = True) -> dict:
         With ``check`` (the default): on pulse ids that are not increasing, or
         non-finite stage delays or pulse energies.
     """
-    parts = {name: [] for name in SHOT_FIELDS if SHOT_FIELDS[name][0] or name in info.optional}
+    parts: dict[str, list] = {name: [] for name in SHOT_FIELDS if SHOT_FIELDS[name][0] or name in info.optional}
     for path in info.files:
         with _open(path) as h5:
             for name in parts:
