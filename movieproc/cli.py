@@ -86,12 +86,12 @@ def cmd_run(args):
 
 def read_geometry(path) -> dict:
     """The ``detector:`` section of a YAML file, as a config layer ``{"detector": {...}}``."""
-    from .errors import ConfigError
+    from .errors import InputError
 
     raw = mpconfig.read_file(path)
     detector = raw.get("detector")
     if not isinstance(detector, dict):
-        raise ConfigError(f"{path}: detector", f"{'no detector section' if detector is None else repr(detector)}",
+        raise InputError(path, "no detector section" if detector is None else f"detector: {detector!r}",
                           "a 'detector:' mapping with the geometry (distance_mm, pixel_size_mm, beam_center_px...)")
     return {"detector": detector}
 
