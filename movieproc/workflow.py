@@ -262,19 +262,20 @@ def snakemake_view(config: dict, workdir=None, create: bool = True) -> dict:
 
 # ------------------------------------------------------------------ stale outputs
 
-def mark_stale(out: Path, cause: str) -> Path | None:
-    """After a failed run, say in ``<out>/STALE.txt`` that the movie and figures there are older."""
+def mark_stale(out: Path, headline: str) -> Path | None:
+    """Say in ``<out>/STALE.txt`` that the movie and figures there may come from an earlier run.
+
+    Written when a run starts (so a run killed outright leaves it) and rewritten with the cause
+    when a run fails; a successful run removes it. Nothing is written without a movie or figures.
+    """
     earlier = [name for name in ("movie.zarr", "figures") if (out / name).exists()]
     if not earlier:
         return None
-    from .stages.common import now
-
     path = out / STALE_FILE
     try:
-        path.write_text(f"The run of {now()} failed: {cause}\n{' and '.join(earlier)} in this folder come from an "
-                        "earlier run and do not reflect the current config (config.effective.yaml may be newer "
-                        "than them). Fix the cause and run again; a successful run removes this file.\n",
-                        encoding="utf-8")
+        path.write_text(f"{headline}\n{' and '.join(earlier)} in this folder come from an earlier run and may not "
+                        "reflect the current config (config.effective.yaml is the config of the last run started). "
+                        "Fix the cause and run again; a successful run removes this file.\n", encoding="utf-8")
     except OSError:
         return None
     return path
@@ -285,8 +286,8 @@ def stale_note(folder: Path) -> str | None:
     path = Path(folder) / STALE_FILE
     if not path.is_file():
         return None
-    return (f"STALE: the movie and figures in {folder} come from an earlier run; the last run failed "
-            f"(see {path})")
+    first = path.read_text(encoding="utf-8", errors="replace").splitlines()[:1] or [""]
+    return f"STALE: the movie and figures in {folder} come from an earlier run ({first[0]} See {path}.)"
 
 
 # ------------------------------------------------------------------ running
@@ -336,13 +337,19 @@ def run_workflow(config: dict, cores: int = 2, targets=(), forcerun=(), dryrun=F
     with tempfile.TemporaryDirectory(prefix="movieproc-config-") as scratch:
         view = snakemake_view(config, workdir, create=not dryrun)
         if not dryrun:
+            from .stages.common import now
+
+            mark_stale(out, f"A run started at {now()} and has not finished (if this file stays, it was "
+                            "interrupted or killed).")
             write_effective_config(config, workdir)
         config_file = write_effective_config(view, workdir, Path(scratch) / "config.yaml")
         try:
             updated = _snakemake(config_file, cores, targets, forcerun, dryrun, workdir, out)
-        except WorkflowFailed as exc:
+        except BaseException as exc:  # a stage's failure, or Ctrl-C
             if not dryrun:
-                mark_stale(out, str(exc))
+                from .stages.common import now
+
+                mark_stale(out, f"The run of {now()} failed: {str(exc) or type(exc).__name__}")
             raise
     if not dryrun:
         (out / STALE_FILE).unlink(missing_ok=True)

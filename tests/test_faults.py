@@ -396,3 +396,27 @@ def test_inspect_reports_a_group_where_a_dataset_belongs(tmp_path):
         h5.create_group("curves")
     with pytest.raises(E.InputError, match="g.h5:curves: found a Group; expected a dataset 'curves'"):
         runfile.inspect_run([f])
+
+
+def test_stale_marker_while_running_and_after_an_interruption(tmp_path, monkeypatch, capsys):
+    """A run killed outright cannot write anything: the marker is written when the run starts."""
+    f = write_h5(tmp_path / "run.h5", run_datasets(n=120))
+    out = tmp_path / "out"
+    (out / "movie.zarr").mkdir(parents=True)  # a movie of an earlier run
+    cfg = cli.process_config(_args([f], out=out, overrides=["compute.progress=false"]))
+    seen = []
+
+    def interrupted(*args, **kwargs):
+        seen.append((out / W.STALE_FILE).read_text())
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(W, "_snakemake", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        W.run_workflow(cfg)
+    assert "has not finished (if this file stays, it was interrupted or killed)" in seen[0]
+    text = (out / W.STALE_FILE).read_text()
+    assert "failed: KeyboardInterrupt" in text and "movie.zarr in this folder come from an earlier run" in text
+    assert W.stale_note(out).startswith(f"STALE: the movie and figures in {out} come from an earlier run")
+    monkeypatch.setattr(W, "_snakemake", lambda *a, **k: [])
+    W.run_workflow(cfg)
+    assert not (out / W.STALE_FILE).exists()
