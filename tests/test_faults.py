@@ -158,7 +158,8 @@ def test_content_errors_stop_the_run_before_any_store(case, tmp_path, monkeypatc
 
 def test_zero_pulse_energies_run_without_the_cut_when_asked(tmp_path):
     f, _, _ = _bad_runs(tmp_path)["zeroenergy"]
-    cfg = cli.process_config(_args([f], out=tmp_path / "o", overrides=["selection.pulse_energy.min_fraction_of_median=null"]))
+    cfg = cli.process_config(_args([f], out=tmp_path / "o",
+                                   overrides=["selection.pulse_energy.min_fraction_of_median=null"]))
     assert [p for p in checks.check([str(f)], cfg) if p.fatal] == []
 
 
@@ -174,7 +175,6 @@ def test_non_finite_config_numbers_are_refused(value, capsys, tmp_path, monkeypa
 
 
 def test_check_command_lists_every_problem_with_counts(tmp_path, capsys):
-    bad = _bad_runs(tmp_path)
     good = write_h5(tmp_path / "in" / "good.h5", run_datasets(n=60))
     assert cli.main(["check", str(good)]) == 0
     assert capsys.readouterr().out.strip().endswith("0 error(s), 0 warning(s): ready to run")
