@@ -4,10 +4,13 @@
     movieproc process   process given run files with the default config
     movieproc synth     write a synthetic run of the demo scenario
     movieproc summary   summarize run files or a movie
+    movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
 
-Every config value can be overridden with ``--set dotted.key=value`` (repeat for
-several; values are parsed as YAML), e.g. ``--set binning.width_ps=0.1``.
+Every config value can be overridden with ``--set dotted.key=value`` (several after
+one --set, and --set may be repeated; values are parsed as YAML), e.g.
+``--set binning.width_ps=0.1 binning.start_ps=-1``. Paths and names given as
+options (--out, --name, run files, --config) are taken as they are, never parsed.
 """
 
 from __future__ import annotations
@@ -15,6 +18,7 @@ from __future__ import annotations
 import argparse
 import logging
 import sys
+import traceback
 from pathlib import Path
 
 from . import __version__
@@ -26,10 +30,24 @@ SAFETY = ("Note: movieproc analyses data. It does not set beam, laser or safety 
           "local rules and the facility's safety staff decide those.")
 
 
-def _add_config_args(p):
-    p.add_argument("--config", "-c", help="config YAML (default: config/config.yaml, the demo)")
-    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override one config value, e.g. --set timing.sign=-1 (repeatable)")
+PROCESS_CONFIG = mpconfig.ROOT / "config" / "process.yaml"
+
+
+class _Extend(argparse.Action):
+    """``--set A=1 B=2 --set C=3`` collects [A=1, B=2, C=3]."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        setattr(namespace, self.dest, list(getattr(namespace, self.dest) or []) + list(values))
+
+
+def _add_set(p):
+    p.add_argument("--set", dest="overrides", action=_Extend, nargs="+", default=[], metavar="KEY=VALUE",
+                   help="override config values, e.g. --set timing.sign=-1 binning.count=20 (repeatable)")
+
+
+def _add_config_args(p, default_config="config/config.yaml, the demo"):
+    p.add_argument("--config", "-c", help=f"config YAML (default: {default_config})")
+    _add_set(p)
     p.add_argument("--cores", type=int, default=2, help="cores for the workflow (default 2)")
     p.add_argument("--dry-run", action="store_true", help="show which stages would run, run nothing")
     p.add_argument("--force", nargs="+", default=[], metavar="STAGE",
@@ -37,12 +55,18 @@ def _add_config_args(p):
 
 
 def _run(config, args):
-    from .workflow import run_workflow
+    from .workflow import WorkflowFailed, output_folder, run_workflow, stale_note
 
-    updated = run_workflow(config, cores=args.cores, forcerun=args.force, dryrun=args.dry_run)
+    out = Path(config["output_dir"])
+    try:
+        updated = run_workflow(config, cores=args.cores, forcerun=args.force, dryrun=args.dry_run)
+    except WorkflowFailed:
+        note = stale_note(output_folder(config))
+        if note:
+            print(note, file=sys.stderr)
+        raise
     if args.dry_run:
         return
-    out = Path(config["output_dir"])
     print(f"\nmovie:   {out / 'movie.zarr'}")
     print(f"figures: {out / 'figures'}")
     print(f"updated: {len(updated)} output(s)" + ("" if updated else " (everything was up to date)"))
@@ -60,12 +84,92 @@ def cmd_run(args):
     _run(config, args)
 
 
+def read_geometry(path) -> dict:
+    """The ``detector:`` section of a YAML file, as a config layer ``{"detector": {...}}``."""
+    from .errors import InputError
+
+    raw = mpconfig.read_file(path)
+    detector = raw.get("detector")
+    if not isinstance(detector, dict):
+        raise InputError(path, "no detector section" if detector is None else f"detector: {detector!r}",
+                          "a 'detector:' mapping with the geometry (distance_mm, pixel_size_mm, beam_center_px...)")
+    return {"detector": detector}
+
+
+def process_layers(files, out=None, name=None, geometry=None) -> list:
+    """Config layers of ``movieproc process``, every path and name as data (never parsed as YAML):
+    the geometry file's detector section, then run files, output folder and run name."""
+    first = Path(files[0])
+    layers = [read_geometry(geometry)] if geometry else []
+    layers.append({"run": {"files": [str(f) for f in files], "generate": None,
+                           "name": name if name is not None else first.stem},
+                   "output_dir": out if out is not None else str(Path("results") / first.stem)})
+    if geometry:
+        layers[-1]["provenance"] = {"geometry_file": str(geometry)}
+    return layers
+
+
+def process_config(args) -> dict:
+    """The validated config of ``movieproc process`` (see :func:`process_layers`); frames need an
+    explicit geometry."""
+    raw = mpconfig.build(args.config or PROCESS_CONFIG, args.overrides,
+                         process_layers(args.files, args.out, args.name, args.geometry))
+    config = mpconfig.validate(raw)
+    _require_geometry(raw, config)
+    return config
+
+
+def _require_geometry(raw: dict, config: dict):
+    from .checks import missing_geometry
+    from .errors import ConfigError, InputError
+    from .io.runfile import inspect_run
+
+    missing = missing_geometry(raw)
+    if not missing:
+        return
+    try:
+        mode = inspect_run(config["run"]["files"]).mode
+    except InputError:
+        return  # the pre-flight reports the file's problem
+    if mode == "frames":
+        raise ConfigError(", ".join(missing), "no value for frames-mode run files",
+                          "the detector geometry of the set-up that recorded them: --geometry FILE.yaml "
+                          "(a detector: section) or --set " + " ".join(f"{k}=..." for k in missing))
+
+
 def cmd_process(args):
-    overrides = [f"run.files={[str(Path(f)) for f in args.files]!r}", "run.generate=null"]
-    out = args.out or f"results/{Path(args.files[0]).stem}"
-    overrides += [f"output_dir={out}", f"run.name={args.name or Path(args.files[0]).stem}"]
-    config = mpconfig.load(args.config or mpconfig.ROOT / "config" / "process.yaml", overrides + args.overrides)
-    _run(config, args)
+    _run(process_config(args), args)
+
+
+def cmd_check(args):
+    """Report every problem of run files and a config; exit 1 when one is fatal."""
+    from .checks import Problem, check
+    from .errors import ConfigError
+
+    if args.files:
+        layers = process_layers(args.files, args.out, None, args.geometry)
+        path = args.config or PROCESS_CONFIG
+    else:
+        layers, path = [], args.config
+    problems = []
+    try:
+        raw = mpconfig.build(path, args.overrides, layers)
+        config = mpconfig.validate(raw)
+    except ConfigError as exc:
+        problems.append(Problem.of(exc))
+        config = None
+    if config is not None:
+        files = [str(f) for f in config["run"]["files"]]
+        problems += check(files, config)
+        try:
+            _require_geometry(raw, config)
+        except ConfigError as exc:
+            problems.append(Problem.of(exc))
+    fatal = sum(p.fatal for p in problems)
+    for p in problems:
+        print(p.line())
+    print(f"{fatal} error(s), {len(problems) - fatal} warning(s)" + ("" if problems else ": ready to run"))
+    return 1 if fatal else 0
 
 
 def cmd_synth(args):
@@ -104,8 +208,13 @@ def cmd_sign_check(args):
 def cmd_summary(args):
     from .summary import summarize_movie, summarize_run
 
+    from .workflow import stale_note
+
     paths = [Path(p) for p in args.paths]
     if len(paths) == 1 and paths[0].is_dir():
+        note = stale_note(paths[0].parent)
+        if note:
+            print(note)
         print(summarize_movie(paths[0]))
     else:
         timing = mpconfig.load(args.config, args.overrides)["timing"] if (args.config or args.overrides) else None
@@ -127,8 +236,19 @@ def build_parser():
     p.add_argument("files", nargs="+", help="HDF5 run files (shots concatenated in file-name order)")
     p.add_argument("--out", "-o", help="output folder (default results/<first file name>)")
     p.add_argument("--name", help="run label for figures")
-    _add_config_args(p)
+    p.add_argument("--geometry", metavar="FILE", help="YAML file whose detector: section gives the detector "
+                   "geometry (needed for frames; --set values override it)")
+    _add_config_args(p, default_config="config/process.yaml, generic settings")
     p.set_defaults(func=cmd_process)
+
+    p = sub.add_parser("check", help="list every problem of run files and a config at once (exit 1 if any is fatal)")
+    p.add_argument("files", nargs="*", help="HDF5 run files (default: run.files of the config)")
+    p.add_argument("--config", "-c", help="config YAML (default: config/process.yaml with files given, "
+                   "else config/config.yaml)")
+    p.add_argument("--out", "-o", help="output folder the run would use")
+    p.add_argument("--geometry", metavar="FILE", help="YAML file with a detector: section")
+    _add_set(p)
+    p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("synth", help="write a synthetic run of the demo scenario with its ground truth")
     p.add_argument("out", help="output folder")
@@ -147,7 +267,7 @@ def build_parser():
     p = sub.add_parser("summary", help="summarize run files, or a movie store")
     p.add_argument("paths", nargs="+", help="run files (HDF5) or one movie.zarr")
     p.add_argument("--config", "-c", help="config whose timing calibration converts edges to fs")
-    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
+    _add_set(p)
     p.set_defaults(func=cmd_summary)
     return parser
 
@@ -156,11 +276,18 @@ def main(argv=None):
     args = build_parser().parse_args(argv)
     setup_logging(logging.DEBUG if args.verbose else logging.INFO)
     try:
-        args.func(args)
+        return int(args.func(args) or 0)
     except MovieprocError as exc:
+        if args.verbose:
+            traceback.print_exc()
         print(f"movieproc: error: {exc}", file=sys.stderr)
         return 2
-    return 0
+    except OSError as exc:  # a file system refusal the checks could not foresee (disk full, a lost mount)
+        if args.verbose:
+            traceback.print_exc()
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"movieproc: error: {where}{exc.strerror or exc} (rerun with -v for the traceback)", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":

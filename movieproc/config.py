@@ -11,6 +11,7 @@ under ``provenance.overrides``.
 from __future__ import annotations
 
 import copy
+import math
 import re
 from pathlib import Path
 
@@ -88,9 +89,11 @@ def apply_overrides(config: dict, overrides) -> dict:
             node = child
         node[parts[-1]] = value
     if overrides:
-        prov = config.setdefault("provenance", {}) or {}
+        prov = config.get("provenance")
+        prov = prov if isinstance(prov, dict) else {}
         config["provenance"] = prov
-        prov["overrides"] = list(prov.get("overrides", [])) + list(overrides)
+        earlier = prov.get("overrides")
+        prov["overrides"] = (list(earlier) if isinstance(earlier, list) else []) + list(overrides)
     return config
 
 
@@ -107,7 +110,25 @@ def _extend_with_default(validator_class):
     return jsonschema.validators.extend(validator_class, {"properties": set_defaults})
 
 
-_Validator = _extend_with_default(jsonschema.Draft202012Validator)
+def _is_finite_number(checker, instance) -> bool:
+    """A JSON-schema ``number`` is a finite int or float: NaN and infinities are refused for every
+    number-typed key, since no setting of this tool means "not a number"."""
+    if isinstance(instance, bool) or not isinstance(instance, (int, float)):
+        return False
+    return math.isfinite(instance)
+
+
+def _is_integer(checker, instance) -> bool:
+    if isinstance(instance, bool):
+        return False
+    return isinstance(instance, int) or (isinstance(instance, float) and math.isfinite(instance)
+                                         and instance.is_integer())
+
+
+_TYPES = jsonschema.Draft202012Validator.TYPE_CHECKER.redefine_many(
+    {"number": _is_finite_number, "integer": _is_integer})
+_Validator = jsonschema.validators.extend(_extend_with_default(jsonschema.Draft202012Validator),
+                                          type_checker=_TYPES)
 
 
 def validate(config: dict) -> dict:
@@ -117,12 +138,13 @@ def validate(config: dict) -> dict:
     """
     config = copy.deepcopy(config or {})
     validator = _Validator(load_schema())
-    errors = sorted(validator.iter_errors(config), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(validator.iter_errors(config),
+                    key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         err = errors[0]
         key = ".".join(str(p) for p in err.absolute_path) or "(top level)"
         if err.validator == "additionalProperties":
-            extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
+            extra = sorted(map(str, set(err.instance) - set(err.schema.get("properties", {}))))
             raise ConfigError(".".join(filter(None, [key if key != "(top level)" else "", extra[0] if extra else ""])),
                               "an unknown key", f"one of {sorted(err.schema.get('properties', {}))}")
         if err.validator == "required":
@@ -135,6 +157,8 @@ def validate(config: dict) -> dict:
 def _expected(err) -> str:
     s = err.schema
     if err.validator == "type":
+        if isinstance(err.instance, float) and not math.isfinite(err.instance):
+            return f"a finite number (a value of type {s['type']})"
         return f"a value of type {s['type']}"
     if err.validator == "enum":
         return f"one of {s['enum']}"
@@ -145,13 +169,24 @@ def _expected(err) -> str:
     return err.message
 
 
+def _check_output_dir(value: str):
+    """Refuse an output folder that would put the stores at the filesystem root or nowhere."""
+    text = value.strip()
+    if not text:
+        raise ConfigError("output_dir", repr(value), "a folder for the outputs, e.g. results/run042 (not empty)")
+    if Path(text).anchor and Path(text) == Path(Path(text).anchor):
+        raise ConfigError("output_dir", repr(value), "a folder below the filesystem root, e.g. results/run042")
+
+
 def _check_consistency(config: dict):
+    _check_output_dir(config["output_dir"])
     b = config.get("binning", {})
     if b.get("mode") == "edges":
         edges = b.get("edges_ps")
         if not edges:
-            raise ConfigError("binning.edges_ps", "no edges", "a list of at least two increasing edges (ps) in edges mode")
-        if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:])):
+            raise ConfigError("binning.edges_ps", "no edges",
+                              "a list of at least two increasing edges (ps) in edges mode")
+        if any(e2 <= e1 for e1, e2 in zip(edges, edges[1:], strict=False)):
             raise ConfigError("binning.edges_ps", f"{edges}", "strictly increasing edges")
     model = config.get("model", {})
     if model.get("anomalous") and model.get("photon_energy_kev") is None:
@@ -162,17 +197,47 @@ def _check_consistency(config: dict):
         raise ConfigError("differences.norm_q_range", f"[{lo}, {hi}]", "[low, high] with low < high (1/Å)")
 
 
-def load(path=None, overrides=None) -> dict:
-    """Read a config file (default: the demo config), apply overrides, validate."""
-    path = Path(path) if path else DEFAULT_CONFIG
-    if not path.exists():
+def merge(base: dict, layer: dict) -> dict:
+    """Return ``base`` with the mapping ``layer`` merged in (sections merged key by key, values
+    replaced). Values are taken as data: a path or name is never re-parsed."""
+    out = copy.deepcopy(base)
+    for key, value in layer.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = merge(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+def read_file(path) -> dict:
+    """Read a YAML mapping from ``path``; every problem is a :class:`ConfigError` naming the file."""
+    path = Path(path)
+    if not path.is_file():
         raise ConfigError("--config", f"no file {path}", "a YAML config file")
     try:
-        raw = read_yaml(path.read_text()) or {}
-    except yaml.YAMLError as exc:
-        raise ConfigError(str(path), f"YAML that does not parse ({exc})", "a YAML mapping") from None
+        raw = read_yaml(path.read_text(encoding="utf-8")) or {}
+    except (yaml.YAMLError, UnicodeDecodeError, ValueError, RecursionError) as exc:
+        raise ConfigError(str(path), f"YAML that does not parse ({' '.join(str(exc).split())})",
+                          "a YAML mapping") from None
     if not isinstance(raw, dict):
         raise ConfigError(str(path), f"a {type(raw).__name__}", "a YAML mapping at the top level")
+    return raw
+
+
+def build(path=None, overrides=None, layers=()) -> dict:
+    """The raw config before validation: the file, then each ``layers`` mapping merged in as data,
+    then the ``dotted.key=value`` overrides (parsed as YAML)."""
+    path = Path(path) if path else DEFAULT_CONFIG
+    raw = read_file(path)
+    for layer in layers:
+        raw = merge(raw, layer)
     raw = apply_overrides(raw, overrides)
-    raw.setdefault("provenance", {})["config_file"] = str(path)
-    return validate(raw)
+    if not isinstance(raw.get("provenance"), dict):
+        raw["provenance"] = {}
+    raw["provenance"]["config_file"] = str(path)
+    return raw
+
+
+def load(path=None, overrides=None, layers=()) -> dict:
+    """Read a config file (default: the demo config), merge ``layers``, apply overrides, validate."""
+    return validate(build(path, overrides, layers))

@@ -6,9 +6,15 @@ found and what was expected, so a user can fix the input without reading code.
 
 from __future__ import annotations
 
+import os
+
 
 class MovieprocError(Exception):
-    """Base class of all errors raised by movieproc on bad input or state."""
+    """Base class of all errors raised by movieproc on bad input or state.
+
+    Every subclass pickles to itself with the same message and fields (errors
+    cross process boundaries when stages run on dask workers).
+    """
 
 
 class InputError(MovieprocError):
@@ -16,7 +22,7 @@ class InputError(MovieprocError):
 
     Parameters
     ----------
-    source : str
+    source : str or path
         File (and, where known, dataset or frame) where the problem is.
     found : str
         What was found.
@@ -24,9 +30,13 @@ class InputError(MovieprocError):
         What the contract expects.
     """
 
-    def __init__(self, source: str, found: str, expected: str):
+    def __init__(self, source: str | os.PathLike, found: str, expected: str):
         self.source, self.found, self.expected = str(source), found, expected
         super().__init__(f"{source}: found {found}; expected {expected}")
+
+    def __reduce__(self):
+        # rebuilt from the fields (a dask worker or another process gets the same error back)
+        return type(self), (self.source, self.found, self.expected)
 
 
 class ConfigError(MovieprocError):
@@ -46,7 +56,14 @@ class ConfigError(MovieprocError):
         self.key, self.found, self.expected = key, found, expected
         super().__init__(f"config key '{key}': found {found}; expected {expected}")
 
+    def __reduce__(self):
+        return type(self), (self.key, self.found, self.expected)
+
 
 class DataError(MovieprocError):
     """The data, though well-formed, cannot give a meaningful result
     (no pump-off shots, every shot cut, too few delays for a fit...)."""
+
+
+class WorkflowFailed(MovieprocError):
+    """A stage of the workflow failed (its error is in the log above)."""

@@ -198,22 +198,17 @@ def test_bins_outside_every_delay_are_a_data_error(tmp_path):
     assert not (out / "bins.zarr").exists() and leftovers(out) == []
 
 
-@pytest.mark.slow
-def test_process_run_without_pump_off_shots_fails_cleanly(tmp_path, monkeypatch, capfd):
+def test_process_run_without_pump_off_shots_fails_before_any_store(tmp_path, monkeypatch, capfd):
     data = run_datasets(n=300)
     data["shots/pump_on"][:] = True
     f = write_h5(tmp_path / "nooff.h5", data)
-    shutil.copytree(SCENARIO.parent, tmp_path / "demo_data")  # the default config's structure files
     monkeypatch.chdir(tmp_path)
     rc = cli.main(["process", str(f), "--out", str(tmp_path / "out"), "--set", "compute.progress=false"])
     assert rc == 2
     err = capfd.readouterr().err
     assert "movieproc: error: " in err
-    assert "no pump-off shot survived the selection" in err  # the stage's DataError reaches the user
-    assert (tmp_path / "out" / "shots.zarr").is_dir()  # the stage before is kept
-    for name in STAGE_OUTPUTS[1:]:
-        assert not (tmp_path / "out" / name).exists()
-    assert leftovers(tmp_path / "out") == []
+    assert f"{f}:shots/pump_on: found no pump-off shot among 300" in err  # the pre-flight check names the file
+    assert not (tmp_path / "out").exists()  # refused before any store is written
 
 
 # ------------------------------------------------------------------ config keys in stage errors

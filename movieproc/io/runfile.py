@@ -77,13 +77,112 @@ class RunInfo:
                 yield path, int(lo - off[i]), int(hi - off[i]), int(lo)
 
 
+#: What h5py and numpy raise on a damaged or unexpected HDF5 file (truncated, flipped bytes, a group
+#: where a dataset belongs, a string dtype...); every one is reported as an InputError naming the file.
+_H5_ERRORS = (OSError, KeyError, RuntimeError, ValueError, TypeError, AttributeError, IndexError)
+
+
 def _open(path: Path):
     if not path.exists():
         raise InputError(path, "no such file", "an HDF5 run file")
+    if path.is_dir():
+        raise InputError(path, "a folder", "an HDF5 run file")
     try:
         return h5py.File(path, "r")
-    except OSError as exc:
-        raise InputError(path, f"a file HDF5 cannot open ({exc})", "an HDF5 run file") from None
+    except _H5_ERRORS as exc:
+        raise InputError(path, f"a file HDF5 cannot open ({_short(exc)})", "an HDF5 run file") from None
+
+
+def _short(exc: Exception) -> str:
+    """An exception as one short line."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= 160 else text[:157] + "..."
+
+
+def _dataset(h5, key: str, path: Path):
+    """``h5[key]`` if it is a dataset, else None when absent; an InputError when it is something else."""
+    if key not in h5:
+        return None
+    ds = h5[key]
+    if not isinstance(ds, h5py.Dataset):
+        raise InputError(f"{path}:{key}", f"a {type(ds).__name__}", f"a dataset '{key}'")
+    return ds
+
+
+@dataclass
+class _FileInfo:
+    """What one run file holds (see :class:`RunInfo`)."""
+
+    n: int
+    present: set
+    mode: str
+    q: np.ndarray | None
+    frame_shape: tuple | None
+    dtype: np.dtype
+
+
+def _shot_fields(h5, path: Path):
+    """Check the per-shot datasets of one file; return (N, names present)."""
+    n, present = None, set()
+    for name, (required, _units, kinds) in SHOT_FIELDS.items():
+        key = f"shots/{name}"
+        ds = _dataset(h5, key, path)
+        if ds is None:
+            if required:
+                raise InputError(f"{path}:{key}", "no such dataset", f"a per-shot dataset '{key}' of shape (N,)")
+            continue
+        if ds.ndim != 1:
+            raise InputError(f"{path}:{key}", f"shape {ds.shape}", "a 1-D per-shot dataset of shape (N,)")
+        if ds.dtype.kind not in kinds:
+            raise InputError(f"{path}:{key}", f"dtype {ds.dtype}", f"a numeric dtype of kind {kinds!r}")
+        if n is None:
+            n = ds.shape[0]
+        elif ds.shape[0] != n:
+            raise InputError(f"{path}:{key}", f"length {ds.shape[0]}", f"length {n}, the same as shots/pulse_id")
+        present.add(name)
+    assert n is not None  # shots/pulse_id is required, so its length was read
+    return int(n), present
+
+
+def _frames(ds, path: Path, n: int):
+    if ds.ndim != 3 or ds.shape[0] != n:
+        raise InputError(f"{path}:frames", f"shape {ds.shape}", f"(N, ny, nx) with N = {n} shots")
+    if ds.dtype.kind not in "fiu":
+        raise InputError(f"{path}:frames", f"dtype {ds.dtype}", "an integer or float dtype")
+    return tuple(ds.shape[1:])
+
+
+def _curves(h5, ds, path: Path, n: int):
+    qds = _dataset(h5, "q", path)
+    if qds is None:
+        raise InputError(f"{path}:q", "no such dataset", "a (nq,) q axis in 1/Å beside 'curves'")
+    if qds.dtype.kind not in "fiu":
+        raise InputError(f"{path}:q", f"dtype {qds.dtype}", "a numeric (nq,) q axis in 1/Å")
+    if ds.dtype.kind not in "fiu":
+        raise InputError(f"{path}:curves", f"dtype {ds.dtype}", "an integer or float dtype")
+    q = np.asarray(qds[...], dtype=np.float64)
+    if q.ndim != 1 or ds.ndim != 2 or ds.shape != (n, q.size):
+        raise InputError(f"{path}:curves", f"shape {ds.shape} with q of shape {q.shape}", f"(N, nq) = ({n}, {q.size})")
+    if q.size < 2 or not np.all(np.isfinite(q)) or np.any(np.diff(q) <= 0):
+        raise InputError(f"{path}:q", "a q axis that is not finite and increasing",
+                         "finite, strictly increasing q in 1/Å (at least two points)")
+    return q
+
+
+def _inspect_file(path: Path) -> _FileInfo:
+    with _open(path) as h5:
+        try:
+            n, present = _shot_fields(h5, path)
+            frames, curves = _dataset(h5, "frames", path), _dataset(h5, "curves", path)
+            if frames is not None:
+                return _FileInfo(n, present, "frames", None, _frames(frames, path, n), frames.dtype)
+            if curves is not None:
+                return _FileInfo(n, present, "curves", _curves(h5, curves, path, n), None, curves.dtype)
+        except _H5_ERRORS as exc:
+            raise InputError(path, f"a damaged or unreadable HDF5 file ({_short(exc)})",
+                             "an intact run file (input contract, docs/DESIGN.md section 4)") from None
+    raise InputError(path, "neither 'frames' nor 'curves'",
+                     "detector data: 'frames' (N, ny, nx) or 'curves' (N, nq) with 'q'")
 
 
 def inspect_run(paths) -> RunInfo:
@@ -102,82 +201,35 @@ def inspect_run(paths) -> RunInfo:
     ------
     InputError
         Naming the file and dataset on a missing dataset, wrong shape or
-        dtype, unequal lengths, or files that disagree on the detector data.
+        dtype, unequal lengths, files that disagree on the detector data,
+        a damaged file, or a run of 0 shots.
     """
     if isinstance(paths, (str, Path)):
         paths = [paths]
     files = sorted((Path(p) for p in paths), key=lambda p: p.name)
     if not files:
         raise InputError("run.files", "an empty list", "at least one HDF5 run file")
-    counts, mode, q, frame_shape, dtype = [], None, None, None, None
-    optional = None
-    for path in files:
-        with _open(path) as h5:
-            n = None
-            present = set()
-            for name, (required, _units, kinds) in SHOT_FIELDS.items():
-                key = f"shots/{name}"
-                if key not in h5:
-                    if required:
-                        raise InputError(f"{path}:{key}", "no such dataset",
-                                         f"a per-shot dataset '{key}' of shape (N,)")
-                    continue
-                ds = h5[key]
-                if not isinstance(ds, h5py.Dataset) or ds.ndim != 1:
-                    raise InputError(f"{path}:{key}", f"shape {getattr(ds, 'shape', '?')}",
-                                     "a 1-D per-shot dataset of shape (N,)")
-                if ds.dtype.kind not in kinds:
-                    raise InputError(f"{path}:{key}", f"dtype {ds.dtype}",
-                                     f"a numeric dtype of kind {kinds!r}")
-                if n is None:
-                    n = ds.shape[0]
-                elif ds.shape[0] != n:
-                    raise InputError(f"{path}:{key}", f"length {ds.shape[0]}",
-                                     f"length {n}, the same as shots/pulse_id")
-                present.add(name)
-            optional = present if optional is None else optional & present
-            if "frames" in h5:
-                this_mode = "frames"
-                ds = h5["frames"]
-                if ds.ndim != 3 or ds.shape[0] != n:
-                    raise InputError(f"{path}:frames", f"shape {ds.shape}",
-                                     f"(N, ny, nx) with N = {n} shots")
-                if ds.dtype.kind not in "fiu":
-                    raise InputError(f"{path}:frames", f"dtype {ds.dtype}", "an integer or float dtype")
-                if frame_shape is not None and tuple(ds.shape[1:]) != frame_shape:
-                    raise InputError(f"{path}:frames", f"frames of shape {tuple(ds.shape[1:])}",
-                                     f"the frame shape {frame_shape} of {files[0]}")
-                frame_shape = tuple(ds.shape[1:])
-                dtype = ds.dtype
-            elif "curves" in h5:
-                this_mode = "curves"
-                if "q" not in h5:
-                    raise InputError(f"{path}:q", "no such dataset", "a (nq,) q axis in 1/Å beside 'curves'")
-                this_q = np.asarray(h5["q"][...], dtype=np.float64)
-                ds = h5["curves"]
-                if this_q.ndim != 1 or ds.ndim != 2 or ds.shape != (n, this_q.size):
-                    raise InputError(f"{path}:curves", f"shape {ds.shape} with q of shape {this_q.shape}",
-                                     f"(N, nq) = ({n}, {this_q.size})")
-                if not np.all(np.isfinite(this_q)) or np.any(np.diff(this_q) <= 0):
-                    raise InputError(f"{path}:q", "a q axis that is not finite and increasing",
-                                     "finite, strictly increasing q in 1/Å")
-                if q is not None and (q.shape != this_q.shape or not np.allclose(q, this_q, rtol=1e-9)):
-                    raise InputError(f"{path}:q", "a q axis different from the first file's",
-                                     f"the q axis of {files[0]}")
-                q = this_q
-                dtype = ds.dtype
-            else:
-                raise InputError(path, "neither 'frames' nor 'curves'",
-                                 "detector data: 'frames' (N, ny, nx) or 'curves' (N, nq) with 'q'")
-            if mode is not None and this_mode != mode:
-                raise InputError(path, f"{this_mode} data", f"{mode} data like {files[0]}")
-            mode = this_mode
-            counts.append(int(n))
-    return RunInfo(files=files, counts=counts, mode=mode, q=q, frame_shape=frame_shape,
-                   data_dtype=np.dtype(dtype), optional=optional or set())
+    parts = [_inspect_file(path) for path in files]
+    first = parts[0]
+    for path, part in zip(files[1:], parts[1:], strict=True):
+        if part.mode != first.mode:
+            raise InputError(path, f"{part.mode} data", f"{first.mode} data like {files[0]}")
+        if part.mode == "frames" and part.frame_shape != first.frame_shape:
+            raise InputError(f"{path}:frames", f"frames of shape {part.frame_shape}",
+                             f"the frame shape {first.frame_shape} of {files[0]}")
+        if part.q is not None and first.q is not None and (
+                part.q.shape != first.q.shape or not np.allclose(first.q, part.q, rtol=1e-9)):
+            raise InputError(f"{path}:q", "a q axis different from the first file's", f"the q axis of {files[0]}")
+    counts = [p.n for p in parts]
+    if sum(counts) == 0:
+        where = files[0] if len(files) == 1 else f"{files[0]} (and {len(files) - 1} more file(s))"
+        raise InputError(f"{where}:shots/pulse_id", "0 shots", "a run with at least one shot")
+    optional = set.intersection(*(p.present for p in parts))
+    return RunInfo(files=files, counts=counts, mode=first.mode, q=first.q, frame_shape=first.frame_shape,
+                   data_dtype=np.dtype(parts[-1].dtype), optional=optional)
 
 
-def read_table(info: RunInfo) -> dict:
+def read_table(info: RunInfo, check: bool = True) -> dict:
     """Read and concatenate the per-shot table of a run.
 
     Returns
@@ -190,14 +242,14 @@ def read_table(info: RunInfo) -> dict:
     Raises
     ------
     InputError
-        On pulse ids that are not increasing, or non-finite stage delays or
-        pulse energies.
+        With ``check`` (the default): on pulse ids that are not increasing, or
+        non-finite stage delays or pulse energies.
     """
-    parts = {name: [] for name in SHOT_FIELDS if SHOT_FIELDS[name][0] or name in info.optional}
+    parts: dict[str, list] = {name: [] for name in SHOT_FIELDS if SHOT_FIELDS[name][0] or name in info.optional}
     for path in info.files:
         with _open(path) as h5:
             for name in parts:
-                parts[name].append(h5[f"shots/{name}"][...])
+                parts[name].append(_read(h5, f"shots/{name}", path, ()))
     table = {}
     for name, chunks in parts.items():
         arr = np.concatenate(chunks) if chunks else np.empty(0)
@@ -208,6 +260,12 @@ def read_table(info: RunInfo) -> dict:
         else:
             arr = arr.astype(np.float64)
         table[name] = arr
+    if check:
+        _check_table(info, table)
+    return table
+
+
+def _check_table(info: RunInfo, table: dict):
     pid = table["pulse_id"]
     if pid.size > 1 and np.any(np.diff(pid) <= 0):
         bad = int(np.argmax(np.diff(pid) <= 0)) + 1
@@ -221,7 +279,15 @@ def read_table(info: RunInfo) -> dict:
             path, local = shot_file(info, bad)
             raise InputError(f"{path}:shots/{name}", f"a non-finite value at shot {local}",
                              "finite values for every shot")
-    return table
+
+
+def _read(h5, key: str, path: Path, index):
+    """``h5[key][index]``; a read error of a damaged file is an InputError naming file and dataset."""
+    try:
+        return h5[key][index]
+    except _H5_ERRORS as exc:
+        raise InputError(f"{path}:{key}", f"data that cannot be read ({_short(exc)})",
+                         "an intact run file (copy it again from the source)") from None
 
 
 def shot_file(info: RunInfo, index: int):
@@ -242,14 +308,24 @@ def read_curves(info: RunInfo, start: int, stop: int) -> np.ndarray:
     out = np.empty((stop - start, info.q.size), dtype=np.float32)
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
-            block = h5["curves"][lo:hi]
+            block = _read(h5, "curves", path, slice(lo, hi))
         if block.dtype.kind == "f":
             finite = np.isfinite(block)
             if not finite.all():
                 row, col = np.argwhere(~finite)[0]
-                raise InputError(f"{path}:curves", f"a non-finite value {block[row, col]} at shot {lo + row}, q index {col}",
+                raise InputError(f"{path}:curves",
+                                 f"a non-finite value {block[row, col]} at shot {lo + row}, q index {col}",
                                  "finite intensities (mask bad points before writing curves)")
         out[g - start:g - start + (hi - lo)] = block
+    return out
+
+
+def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
+    """Read curves of shots [start, stop) as float32 (n, nq) without checking their values."""
+    out = np.empty((stop - start, info.q.size), dtype=np.float32)
+    for path, lo, hi, g in info.locate(start, stop):
+        with _open(path) as h5:
+            out[g - start:g - start + (hi - lo)] = _read(h5, "curves", path, slice(lo, hi))
     return out
 
 
@@ -258,5 +334,5 @@ def read_frames(info: RunInfo, start: int, stop: int) -> np.ndarray:
     out = np.empty((stop - start, *info.frame_shape), dtype=info.data_dtype)
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
-            out[g - start:g - start + (hi - lo)] = h5["frames"][lo:hi]
+            out[g - start:g - start + (hi - lo)] = _read(h5, "frames", path, slice(lo, hi))
     return out
