@@ -6,6 +6,7 @@
     movieproc summary   summarize run files or a movie
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
+    movieproc calibrate detector geometry from a calibrant powder image
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
@@ -269,6 +270,10 @@ def build_parser():
     p.add_argument("--config", "-c", help="config whose timing calibration converts edges to fs")
     _add_set(p)
     p.set_defaults(func=cmd_summary)
+
+    from . import calibrate_command
+
+    calibrate_command.add_parser(sub)
     return parser
 
 
