@@ -432,3 +432,22 @@ def test_variance_leaves_out_the_saturated_pixels_of_a_shot(tmp_path):
         assert np.all(np.isfinite(var)) and np.all(var > 0)
         assert np.all(var[3] < 2 * np.median(var, axis=0))
         assert np.all(np.isfinite(store.curves(0, 16, "curves_sectors")))
+
+
+def test_geometry_check_warns_when_the_beam_centre_row_and_column_are_swapped(tmp_path):
+    # The ring check (detector.ringcheck) on the run's first frames: with the centre the frames were
+    # made with, the solvent-like ring at q = 2 1/Å is round and nothing is said; with row and column
+    # swapped it is off-centre by about sqrt(2) * 12 px, and the stage warns, naming the config keys.
+    rng = np.random.default_rng(7)
+    true = _detector(shape_px=[128, 128], beam_center_px=[58.0, 70.0], q_min=1.0, q_max=3.0)
+    photon = np.full(24, 12.0)
+    frames = _frames(true, 24, photon, rng, photons_per_pixel=2000.0)
+    _write_run(tmp_path / "run.h5", frames, photon)
+    right = _integrate([str(tmp_path / "run.h5")], tmp_path / "right.zarr", true)
+    assert not any("geometry check" in w for w in right["warnings"])
+    assert zarr.open_group(str(tmp_path / "right.zarr"), mode="r").attrs["geometry_check"]["verdict"] == "ok"
+    swapped = dict(true, beam_center_px=[70.0, 58.0])
+    wrong = _integrate([str(tmp_path / "run.h5")], tmp_path / "wrong.zarr", swapped)
+    assert any("geometry check" in w and "detector.beam_center_px" in w for w in wrong["warnings"])
+    check = zarr.open_group(str(tmp_path / "wrong.zarr"), mode="r").attrs["geometry_check"]
+    assert check["verdict"] == "suspect" and check["offset_px"] > 10

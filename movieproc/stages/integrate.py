@@ -39,7 +39,7 @@ import h5py
 import numpy as np
 import zarr
 
-from ..detector import anisotropy, corrections, curves, energy, geometry, integration, masks
+from ..detector import anisotropy, corrections, curves, energy, geometry, integration, masks, ringcheck
 from ..errors import ConfigError, InputError
 from ..io import runfile, shotstore, store
 from ..parallel import chunk_ranges, map_ranges
@@ -59,6 +59,8 @@ CONFIG_KEYS = {"variance": "detector.variance", "sectors": "detector.sectors",
                "scheduler": "compute.scheduler"}
 #: q points named in full in an error message before it says "...".
 NAMED_Q_POINTS = 6
+#: Frames averaged for the geometry check: enough for a clear solvent ring, cheap next to the run.
+CHECK_FRAMES = 32
 UNITS = "detector units / (solid angle and polarization factors)"
 
 
@@ -184,6 +186,9 @@ class _Setup:
     used: int
     pixel_count: np.ndarray
     centres: np.ndarray | None
+    geometry: geometry.Geometry
+    mask: np.ndarray
+    factor: np.ndarray
 
 
 def _reference(detector, photon):
@@ -275,7 +280,33 @@ def _setup(info, detector, photon, warnings) -> _Setup:
     pixel_count = _check_coverage(detector, binning, q, scale, e_ref)
     empty = None if centres is None else _sector_gaps(binning, q, scale, detector["energy_aware"], centres, warnings)
     layout = curves.CurveLayout(binning, q, detector["energy_aware"], detector.get("variance"), empty)
-    return _Setup(layout, scale, e_ref, reasons, used, pixel_count, centres)
+    return _Setup(layout, scale, e_ref, reasons, used, pixel_count, centres, geo, mask, factor)
+
+
+def _geometry_check(info, detector, setup, warnings) -> dict:
+    """How round the strongest ring of the first frames is with the configured geometry.
+
+    A cheap sanity test (:func:`movieproc.detector.ringcheck.ring_check`) that catches a
+    swapped beam-centre row/column or wrong pixel sizes; it cannot see a uniform scale
+    error (distance, photon energy). A "suspect" verdict becomes a warning.
+    """
+    if not detector["geometry_check"]:
+        return {"verdict": "not run", "message": "detector.geometry_check is false"}
+    frames = runfile.read_frames(info, 0, min(CHECK_FRAMES, info.n_shots))
+    mean = frames.mean(axis=0, dtype=np.float64)
+    check = None
+    # the configured q range first; the whole frame when a wrong geometry moves the ring out of it
+    for q_range in ((detector["q_min"], detector["q_max"]), None):
+        check = ringcheck.ring_check(mean, setup.mask, setup.geometry, setup.reference_energy, q_range=q_range,
+                                     correction=setup.factor)
+        if check.verdict != "unusable":
+            break
+    log.info("geometry check (%d frames): %s", frames.shape[0], check.message)
+    if check.verdict == "suspect":
+        warnings.add(f"geometry check on the first {frames.shape[0]} frames: {check.message} "
+                     "(a calibrant image gives them: movieproc calibrate)")
+    return {"verdict": check.verdict, "message": check.message, "offset_px": check.offset_px,
+            "ellipticity_px": check.ellipticity_px, "ring_q": check.ring_q}
 
 
 def _create_store(tmp, info, setup, table, chunk, attrs):
@@ -371,11 +402,13 @@ def run(inputs: dict, out: Path, config: dict) -> None:
                  photon.min(), photon.max(),
                  ", ".join(f"{v} from {k}" for k, v in origins.items() if v))
         setup = _setup(info, detector, photon, warnings)
+        ring = _geometry_check(info, detector, setup, warnings)
     attrs = {
         "mode": "frames", "files": [str(f) for f in info.files],
         "checksums": {str(f): shotstore.file_checksum(f) for f in info.files}, "counts": info.counts,
         "detector": detector, "reference_energy_kev": setup.reference_energy, "photon_energy_origin": origins,
-        "pixels_left_out": setup.reasons, "pixels_used": setup.used, "written": now(), "versions": versions(),
+        "pixels_left_out": setup.reasons, "pixels_used": setup.used, "geometry_check": ring,
+        "written": now(), "versions": versions(),
     }
     with store.atomic_path(out) as tmp, config_errors(CONFIG_KEYS, config):
         group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon),
