@@ -50,3 +50,25 @@ class ConfigError(MovieprocError):
 class DataError(MovieprocError):
     """The data, though well-formed, cannot give a meaningful result
     (no pump-off shots, every shot cut, too few delays for a fit...)."""
+
+
+class ParameterError(MovieprocError, ValueError):
+    """A numeric core's argument is outside what the core accepts.
+
+    Cores name their OWN parameter (``lifetimes``, ``p0.t0``, ``transitions``),
+    never a config key; the stage that called the core maps the parameter to the
+    config key a user sets (see ``movieproc.stages.keys``).
+
+    Parameters
+    ----------
+    parameter : str
+        The core's parameter name (dotted for an entry, e.g. ``p0.sigma``).
+    found : str
+        What was found.
+    expected : str
+        What is expected.
+    """
+
+    def __init__(self, parameter: str, found: str, expected: str):
+        self.parameter, self.found, self.expected = parameter, found, expected
+        super().__init__(f"parameter '{parameter}': found {found}; expected {expected}")

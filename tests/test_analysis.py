@@ -143,8 +143,8 @@ def test_species_mode_with_free_curves(reduced):
     a = _analyze(reduced, "species.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[20.0]",
                  "fit.delay_range_ps=[1.5, 200]")
     p = a.attrs["fit_parameters"]
-    assert abs(p["tau_1"]["value"] / 30.0 - 1) < 0.1
-    assert abs(p["tau_1"]["value"] - 30.0) <= 3 * p["tau_1"]["error"]
+    assert abs(p["lifetime_1"]["value"] / 30.0 - 1) < 0.1
+    assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
     assert a.attrs["fit_converged"]
 
 
@@ -197,7 +197,7 @@ def test_network_kinetics_and_its_validation(reduced):
     a = _analyze(reduced, "network.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
                  "fit.network=[[0, 1]]", "fit.lifetimes_ps=[20.0]", "fit.delay_range_ps=[1.5, 200]")
     p = a.attrs["fit_parameters"]
-    assert abs(p["tau_1"]["value"] - 30.0) <= 3 * p["tau_1"]["error"]
+    assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
     # transitions that do not match the lifetimes, or a self-transition: refused with the key named
     with pytest.raises(ConfigError, match="fit.network"):
         _analyze(reduced, "bad.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",

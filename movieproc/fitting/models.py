@@ -34,7 +34,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from movieproc.errors import ConfigError, InputError
+from movieproc.errors import InputError, ParameterError
 from movieproc.fitting import irf, kinetics
 
 __all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel"]
@@ -149,7 +149,7 @@ class SpeciesModel:
         instrument response itself rather than the response widened by binning.
     transitions : array_like of int, shape (m, 2), optional
         ``network`` scheme: [from, to] species indices of each transition, whose
-        rate is 1 / tau_i (i in the order given). The rate matrix is checked to
+        rate is 1 / lifetime_i (i in the order given). The rate matrix is checked to
         be a valid first-order network.
 
     Notes
@@ -157,12 +157,12 @@ class SpeciesModel:
     With free curves for all of A1..Am the span of the sequential populations is
     that of the m exponentials, so the model is unchanged when lifetimes are
     exchanged: the data then give the set of lifetimes, and which species owns which
-    needs given curves or a constraint (e.g. bounds that keep tau_1 < tau_2).
+    needs given curves or a constraint (e.g. bounds that keep lifetime_1 < lifetime_2).
 
     Attributes
     ----------
     param_names : tuple of str
-        ``t0`` (ps), ``sigma`` (ps, IRF standard deviation), ``tau_1``..``tau_m``
+        ``t0`` (ps), ``sigma`` (ps, IRF standard deviation), ``lifetime_1``..``lifetime_m``
         (lifetimes, ps), then ``osc_period``, ``osc_damping`` if enabled.
     default_bounds : dict
         name -> (lower, upper).
@@ -179,20 +179,20 @@ class SpeciesModel:
         self.width = _BinWidth(*(delay_spread or (None, None)))
         m = int(n_lifetimes)
         if m < 1:
-            raise ConfigError("fit.kinetics.n_lifetimes", str(n_lifetimes), "an integer >= 1")
+            raise ParameterError("n_lifetimes", str(n_lifetimes), "an integer >= 1")
         if scheme not in ("sequential", "parallel", "network"):
-            raise ConfigError("fit.kinetics", repr(scheme), "'sequential', 'parallel' or 'network'")
+            raise ParameterError("scheme", repr(scheme), "'sequential', 'parallel' or 'network'")
         self.n_lifetimes, self.scheme = m, scheme
         n_species = m + 1
         self.transitions = None
         if scheme == "network":
             tr = np.asarray(transitions if transitions is not None else [], dtype=float)
             if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
-                raise ConfigError("fit.network", f"{transitions!r}",
+                raise ParameterError("transitions", f"{transitions!r}",
                                   f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
             tr = tr.astype(int)
             if np.any(tr[:, 0] == tr[:, 1]):
-                raise ConfigError("fit.network", f"{transitions!r}", "transitions between different species")
+                raise ParameterError("transitions", f"{transitions!r}", "transitions between different species")
             self.transitions = tr
             n_species = int(tr.max()) + 1
         letters = ([f"A{i + 1}" for i in range(m)] + ["P"] if scheme != "network"
@@ -201,17 +201,17 @@ class SpeciesModel:
         self.species = list(range(n_species)) if species is None else [int(s) for s in species]
         if (not self.species or any(s < 0 or s >= n_species for s in self.species)
                 or len(set(self.species)) != len(self.species)):
-            raise ConfigError("fit.kinetics.species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
+            raise ParameterError("species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
         self.initial = None
         if scheme == "network":
             init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
             if init.shape != (n_species,) or not np.all(np.isfinite(init)):
-                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{n_species} finite initial populations")
+                raise ParameterError("initial", f"{initial!r}", f"{n_species} finite initial populations")
             self.initial = init
         if scheme == "parallel":
             init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
             if init.shape != (m,) or not np.all(np.isfinite(init)):
-                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{m} finite initial populations")
+                raise ParameterError("initial", f"{initial!r}", f"{m} finite initial populations")
             self.initial = np.append(init, 0.0)
         nq = None
         if curves is not None:
@@ -224,17 +224,17 @@ class SpeciesModel:
         else:
             self.curves = None
         if oscillation and curves is not None:
-            raise ConfigError("fit.model.oscillation", "an oscillation with given species curves",
+            raise ParameterError("oscillation", "an oscillation with given species curves",
                               "free species curves (no curve is known for the oscillation)")
         self.oscillation = bool(oscillation)
         self.solvent, self.solvent_names = _solvent(solvent, solvent_names, nq)
-        names = ["t0", "sigma"] + [f"tau_{i + 1}" for i in range(m)]
+        names = ["t0", "sigma"] + [f"lifetime_{i + 1}" for i in range(m)]
         if self.oscillation:
             names += ["osc_period", "osc_damping"]
         self.param_names = tuple(names)
         self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf)}
         for i in range(m):
-            self.default_bounds[f"tau_{i + 1}"] = (1e-6, np.inf)
+            self.default_bounds[f"lifetime_{i + 1}"] = (1e-6, np.inf)
         if self.oscillation:
             self.default_bounds["osc_period"] = (1e-6, np.inf)
             self.default_bounds["osc_damping"] = (1e-6, np.inf)
@@ -245,7 +245,7 @@ class SpeciesModel:
 
     def rate_matrix(self, params):
         """Rate matrix (1/ps) of the scheme for parameters ``params`` (dict)."""
-        k = np.array([1.0 / params[f"tau_{i + 1}"] for i in range(self.n_lifetimes)])
+        k = np.array([1.0 / params[f"lifetime_{i + 1}"] for i in range(self.n_lifetimes)])
         if self.scheme == "sequential":
             return kinetics.sequential_rate_matrix(k)
         if self.scheme == "network":
