@@ -37,7 +37,7 @@ import numpy as np
 from movieproc.errors import InputError, ParameterError
 from movieproc.fitting import irf, kinetics
 
-__all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel"]
+__all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel", "species_with_signal"]
 
 
 @dataclass
@@ -299,6 +299,47 @@ class SpeciesModel:
                 delay, params["sigma"]) for ph in (0.0, -np.pi / 2)]
             profiles = np.column_stack([profiles] + osc)
         return LinearDesign(profiles=profiles, maps=maps, curves=self.solvent, populations=pop)
+
+
+def species_with_signal(n_lifetimes, scheme="sequential", transitions=None, product_signal=False):
+    """Species of a kinetic scheme that carry a solute signal by default.
+
+    Every species but the final product(s) (the recovered ground state), unless
+    ``product_signal``: then all of them.
+
+    Parameters
+    ----------
+    n_lifetimes : int
+        Number of decay steps (lifetimes).
+    scheme : {"sequential", "parallel", "network"}
+    transitions : sequence of (int, int), optional
+        ``network``: [from, to] of each step, one per lifetime.
+    product_signal : bool
+        The final product(s) have a solute signal of their own.
+
+    Returns
+    -------
+    species : list of int
+        Indices of the species with a signal.
+    n_species : int
+        Number of species of the scheme.
+
+    Raises
+    ------
+    ParameterError
+        ``transitions`` missing or not one per lifetime in the network scheme.
+    """
+    n = int(n_lifetimes)
+    if scheme == "network":
+        if not transitions or len(transitions) != n:
+            raise ParameterError("transitions", f"{transitions!r}", f"one [from, to] transition per lifetime ({n})")
+        n_species = max(max(t) for t in transitions) + 1
+        sources = {t[0] for t in transitions}
+        transient = [i for i in range(n_species) if i in sources]
+    else:
+        n_species = n + 1
+        transient = list(range(n))
+    return (list(range(n_species)) if product_signal else transient), n_species
 
 
 class TrajectoryModel:
