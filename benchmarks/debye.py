@@ -57,7 +57,7 @@ def main(argv=None):
     pdist(pos)
 
     hist = D.distance_histograms(pos, elements, r_max=r_max)
-    _, table = D.effective_form_factors(list(hist.elements), q)
+    _, table = D.effective_form_factors(q, list(hist.elements))
     sinc = D.sinc_table(q, hist.r)
     t_table = best(lambda: D.sinc_table(q, hist.r), 3)
 

@@ -82,7 +82,7 @@ def test_cage_term_gaussian_closed_form():
     r = np.linspace(0.0, 12.0, 6001)
     amp, width = 0.8, 0.6
     g = 1.0 + amp * np.exp(-((r - 0.0) ** 2) / (2 * width**2))
-    fa, fb = ff.form_factor("Ir", q), ff.form_factor("O", q)
+    fa, fb = ff.form_factor(q, "Ir"), ff.form_factor(q, "O")
     got = model.cage_term(q, r, g, fa, fb, n_a=1, n_b=300, volume=9000.0, window=None)
     ref = 2 * fa * fb * (300 / 9000.0) * amp * (2 * np.pi) ** 1.5 * width**3 * np.exp(-(q * width) ** 2 / 2)
     # trapezoid with dr = 0.002 Å on a smooth integrand: relative error ~1e-7; 1e-5 of max
@@ -193,7 +193,7 @@ def test_stage_without_trajectory_or_species(tmp_path):
                 {"energy": 11.0, "anomalous": True, "excluded_volume": True, "damping": {"Ir-Ir": 0.05}})
     ds = xr.open_zarr(out, consolidated=False)
     assert ds["traj_dS"].shape == (0, Q.size) and ds["species_dS"].shape == (0, Q.size)
-    ref = D.debye(Q, ground_structure(), ELEMENTS, energy=11.0, anomalous=True,
+    ref = D.debye(Q, ground_structure(), ELEMENTS, photon_energy=11.0, anomalous=True,
                   excluded_volume=ff.WATER_ELECTRON_DENSITY, damping={"Ir-Ir": 0.05})
     np.testing.assert_allclose(ds["ground_S"].values, ref, rtol=0, atol=1e-4 * np.abs(ref).max())
 

@@ -123,7 +123,7 @@ def test_heating_curve_recovered_from_late_delays():
     rng = np.random.default_rng(11)
     delays, d, e = heating_map(rng)
     hc = solvent.estimate_heating_curve(d, e, delays, (250.0, 1500.0))
-    np.testing.assert_array_equal(hc.delays_used, [300.0, 500.0, 700.0, 1000.0])
+    np.testing.assert_array_equal(hc.delay_used, [300.0, 500.0, 700.0, 1000.0])
     truth = DSDT / np.abs(DSDT).max()
     # The normalization divides by the noisy max|h| (relative error ~ ERR/(A sqrt(4)) ~
     # 1 %), a common factor: compare shapes after a least-squares rescale, then demand

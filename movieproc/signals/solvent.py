@@ -207,7 +207,7 @@ class HeatingCurve:
         Standard error of ``curve`` (amplitudes held fixed).
     amplitudes, amplitude_err : ndarray, shape (n_used,)
         A(t) at the delays used, in data units (data = A h).
-    delays_used : ndarray, shape (n_used,)
+    delay_used : ndarray, shape (n_used,)
         Delays of the window, ps.
     chi2, dof, red_chi2 : float, int, float
         Fit of the late curves by the single shape (2-D weighted rank-1 fit).
@@ -220,7 +220,7 @@ class HeatingCurve:
     curve_err: np.ndarray
     amplitudes: np.ndarray
     amplitude_err: np.ndarray
-    delays_used: np.ndarray
+    delay_used: np.ndarray
     chi2: float
     dof: int
     red_chi2: float
@@ -312,7 +312,7 @@ def estimate_heating_curve(diff, diff_err, delay, late_window, *, max_iter=200, 
                         "solute signal or density change may remain in the window")
     if np.any(a * np.sign(a.mean()) < -3 * a_err):
         warnings.append("heating amplitude changes sign inside the late window")
-    return HeatingCurve(curve=h, curve_err=h_err, amplitudes=a, amplitude_err=a_err, delays_used=delays[sel],
+    return HeatingCurve(curve=h, curve_err=h_err, amplitudes=a, amplitude_err=a_err, delay_used=delay[sel],
                         chi2=chi2, dof=dof, red_chi2=red, warnings=warnings)
 
 
