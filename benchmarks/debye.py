@@ -77,9 +77,9 @@ def main(argv=None):
 
     tel, tpos = cluster(n_traj_atoms, rng)
     traj = tpos[None] + rng.normal(scale=0.05, size=(n_frames, n_traj_atoms, 3))
-    model.trajectory_curves(q, traj[:4], tel, num_workers=2)  # warm up threads
+    model.trajectory_curves(q, traj[:4], tel, workers=2)  # warm up threads
     t0 = time.perf_counter()
-    model.trajectory_curves(q, traj, tel, num_workers=2)
+    model.trajectory_curves(q, traj, tel, workers=2)
     t_traj = time.perf_counter() - t0
 
     ratio = t_hist / t_pdist
