@@ -67,7 +67,8 @@ def _solvent(solvent, solvent_names, nq):
         return None, []
     G = np.atleast_2d(np.asarray(solvent, dtype=float))
     if G.ndim != 2 or (nq is not None and G.shape[1] != nq) or not np.all(np.isfinite(G)):
-        raise InputError("argument 'solvent'", f"shape {G.shape}", "finite solvent curves (J, n_q) on the data's q grid")
+        raise InputError("argument 'solvent'", f"shape {G.shape}",
+                         "finite solvent curves (J, n_q) on the data's q grid")
     names = [f"solvent_{j}" for j in range(G.shape[0])] if solvent_names is None else list(solvent_names)
     if len(names) != G.shape[0]:
         raise InputError("argument 'solvent_names'", f"{len(names)} names", f"{G.shape[0]}")
@@ -90,7 +91,8 @@ class _BinWidth:
         d = np.asarray(delay, dtype=float)
         sp = np.asarray(spread, dtype=float)
         if d.shape != sp.shape or d.ndim != 1 or not np.all(np.isfinite(d)):
-            raise InputError("argument 'delay_spread'", f"shapes {d.shape}, {sp.shape}", "(n_delay,) delays and spreads (ps)")
+            raise InputError("argument 'delay_spread'", f"shapes {d.shape}, {sp.shape}",
+                             "(n_delay,) delays and spreads (ps)")
         order = np.argsort(d)
         self.delay, self.spread = d[order], np.nan_to_num(sp[order], nan=0.0)
 
@@ -251,7 +253,7 @@ class SpeciesModel:
         if self.scheme == "network":
             n = len(self.species_names)
             K = np.zeros((n, n))
-            for (i, j), rate in zip(self.transitions, k):
+            for (i, j), rate in zip(self.transitions, k, strict=True):
                 K[j, i] += rate
                 K[i, i] -= rate
             kinetics.validate_rate_matrix(K)

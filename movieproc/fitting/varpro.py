@@ -373,7 +373,7 @@ class Problem:
     def params_of(self, x):
         """All parameters with the free ones set to ``x``."""
         p = dict(self.start)
-        p.update(zip(self.free, map(float, x)))
+        p.update(zip(self.free, map(float, x), strict=True))
         return p
 
     def design(self, params):
@@ -543,7 +543,7 @@ def parameter_errors(prob, opt, linear_errors=True):
         if J:
             coef_err = np.sqrt(var[K * nq: K * nq + nt * J]).reshape(nt, J)
         if sol.map_coef.size:
-            amplitudes_err = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist()))
+            amplitudes_err = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist(), strict=True))
         corr_names = list(free) + list(model.map_names)
     else:
         cov_theta = _inv_psd(opt.jacobian.T @ opt.jacobian) * red
@@ -590,7 +590,7 @@ def flags(prob, opt, errors):
         warnings.append(f"the data do not determine {undetermined} (singular Jacobian)")
     corr, names = errors.correlation, errors.corr_names
     if corr.size:
-        for i, j in zip(*np.triu_indices(len(names), 1)):
+        for i, j in zip(*np.triu_indices(len(names), 1), strict=True):
             if abs(corr[i, j]) > STRONG_CORRELATION:
                 warnings.append(f"parameters {names[i]} and {names[j]} are strongly correlated ({corr[i, j]:+.3f})")
     dof, red = opt.dof, opt.red_chi2
@@ -656,7 +656,8 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
     at_bound, warnings = flags(prob, opt, errors)
     sol = opt.solution
     return FitResult(params=opt.params, stderr=errors.stderr, free=list(prob.free), correlation=errors.correlation,
-                     corr_names=errors.corr_names, amplitudes=dict(zip(model.map_names, sol.map_coef.tolist())),
+                     corr_names=errors.corr_names,
+                     amplitudes=dict(zip(model.map_names, sol.map_coef.tolist(), strict=True)),
                      amplitudes_err=errors.amplitudes_err, species_curves=sol.curves,
                      species_curves_err=errors.curves_err, profile_names=list(getattr(model, "profile_names", [])),
                      solvent_coef=sol.curve_coef, solvent_coef_err=errors.coef_err,
@@ -855,7 +856,8 @@ def bootstrap(fun, arrays, n, rng, *, ci=0.95):
         raise DataError(f"all {n} bootstrap replicates failed")
     S = np.array(out)
     a = (1 - ci) / 2
-    return BootstrapResult(samples=S, mean=S.mean(0), std=S.std(0, ddof=1) if len(S) > 1 else np.full(S.shape[1], np.nan),
+    std = S.std(0, ddof=1) if len(S) > 1 else np.full(S.shape[1], np.nan)
+    return BootstrapResult(samples=S, mean=S.mean(0), std=std,
                            low=np.quantile(S, a, axis=0), high=np.quantile(S, 1 - a, axis=0),
                            n_failed=failed, ci=float(ci))
 
@@ -891,7 +893,8 @@ def _refit(model, result, diff, diff_err, delay):
 def _per_parameter(model, result, samples, over):
     names = list(model.param_names) + list(result.amplitudes)
     sd = np.std(np.asarray(samples, float), axis=0, ddof=1)
-    return {n: ParameterBootstrap(error=float(v), replicates=len(samples), over=over) for n, v in zip(names, sd)}
+    return {n: ParameterBootstrap(error=float(v), replicates=len(samples), over=over)
+            for n, v in zip(names, sd, strict=True)}
 
 
 def refit_replicates(model, result, replicates, diff_err, delay):
@@ -956,5 +959,5 @@ def refit_resamples(model, result, diff, diff_err, delay, n, rng):
     draws = bootstrap(one, (diff, diff_err, delay), n, rng)
     names = list(model.param_names) + list(result.amplitudes)
     errors = {k: ParameterBootstrap(error=float(v), replicates=int(len(draws.samples)), over="delays")
-              for k, v in zip(names, draws.std)}
+              for k, v in zip(names, draws.std, strict=True)}
     return errors, draws

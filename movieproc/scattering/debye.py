@@ -232,7 +232,7 @@ def debye(q, positions, elements, photon_energy=None, anomalous=False, damping=N
             sig = per_atom_sigma[i, j]
             block *= np.exp(-0.5 * np.multiply.outer(sig**2, q2)).astype(np.float32)
         bounds = np.flatnonzero(np.r_[True, p[1:] != p[:-1], True])
-        for a, b in zip(bounds[:-1], bounds[1:]):
+        for a, b in zip(bounds[:-1], bounds[1:], strict=True):
             sums[p[a]] += block[a:b].sum(axis=0, dtype=np.float64)
     if factors is not None:
         sums *= factors

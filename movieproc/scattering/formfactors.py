@@ -259,7 +259,7 @@ _BOHR = constants.physical_constants["Bohr radius"][0] * 1e10  # Å
 #: Slater's effective principal quantum numbers n* for n = 1..7.
 _NSTAR = {1: 1.0, 2: 2.0, 3: 3.0, 4: 3.7, 5: 4.0, 6: 4.2, 7: 4.4}
 #: Subshells (n, l) in Madelung filling order.
-_MADELUNG = sorted(((n, l) for n in range(1, 8) for l in range(0, min(n, 4))),
+_MADELUNG = sorted(((n, ell) for n in range(1, 8) for ell in range(0, min(n, 4))),
                    key=lambda nl: (nl[0] + nl[1], nl[0]))
 _R = np.geomspace(1e-5, 40.0, 1600)  # radial grid, Å
 _W = np.empty_like(_R)  # trapezoid weights on the grid
@@ -269,37 +269,37 @@ _W[-1] = 0.5 * (_R[-1] - _R[-2])
 
 
 def _configuration(n_electrons):
-    """Ground-state occupation [(n, l, k)] by the Madelung rule."""
+    """Ground-state occupation [(n, ell, k)] by the Madelung rule."""
     out, left = [], n_electrons
-    for n, l in _MADELUNG:
+    for n, ell in _MADELUNG:
         if left <= 0:
             break
-        k = min(left, 2 * (2 * l + 1))
-        out.append((n, l, k))
+        k = min(left, 2 * (2 * ell + 1))
+        out.append((n, ell, k))
         left -= k
     return out
 
 
 def _slater_exponents(z, config):
     """Orbital exponents zeta (1/bohr) by Slater's screening rules."""
-    def group(n, l):
-        return (n, 0 if l < 2 else l)  # (ns,np) share a group; nd, nf are their own
+    def group(n, ell):
+        return (n, 0 if ell < 2 else ell)  # (ns,np) share a group; nd, nf are their own
 
     zetas = []
-    for n, l, _ in config:
-        g = group(n, l)
+    for n, ell, _ in config:
+        g = group(n, ell)
         shield = 0.0
         for n2, l2, k2 in config:
-            count = k2 - 1 if (n2, l2) == (n, l) else k2
+            count = k2 - 1 if (n2, l2) == (n, ell) else k2
             g2 = group(n2, l2)
             if g2 == g:
                 shield += (0.30 if n == 1 else 0.35) * count
-            elif l < 2:
+            elif ell < 2:
                 if n2 == n - 1:
                     shield += 0.85 * count
                 elif n2 < n - 1:
                     shield += 1.00 * count
-            elif n2 < n or (n2 == n and g2[1] < l):
+            elif n2 < n or (n2 == n and g2[1] < ell):
                 shield += 1.00 * count
         zetas.append((z - shield) / _NSTAR[n])
     return zetas
@@ -322,15 +322,15 @@ def _orbitals(z, n_electrons):
     config = _configuration(n_electrons)
     zetas = _slater_exponents(z, config)
     radial = []
-    for (n, l, _), zeta in zip(config, zetas):
+    for (n, _, _), zeta in zip(config, zetas, strict=True):
         ns = _NSTAR[n]
         # r^(n*-1) exp(-zeta r / a0), evaluated in log space to avoid overflow
         with np.errstate(divide="ignore"):
             rr = np.exp((ns - 1.0) * np.log(_R) - max(zeta, 1e-3) * _R / _BOHR)
         radial.append(rr)
-    for i, (n, l, _) in enumerate(config):  # Gram-Schmidt within each l, inner shells first
+    for i, (_, ell, _) in enumerate(config):  # Gram-Schmidt within each l, inner shells first
         for j in range(i):
-            if config[j][1] == l:
+            if config[j][1] == ell:
                 radial[i] = radial[i] - np.sum(_W * _R**2 * radial[i] * radial[j]) * radial[j]
         radial[i] = radial[i] / np.sqrt(np.sum(_W * _R**2 * radial[i] ** 2))
     return config, np.array(radial)
@@ -361,8 +361,8 @@ def incoherent(q, element):
     if n_el < 1:
         return np.zeros_like(q)
     config, radial = _orbitals(z, n_el)
-    ls = np.array([l for _, l, _ in config])
-    occ = np.array([k / (2.0 * (2 * l + 1)) for _, l, k in config])  # per spin-orbital
+    ls = np.array([ell for _, ell, _ in config])
+    occ = np.array([k / (2.0 * (2 * ell + 1)) for _, ell, k in config])  # per spin-orbital
     qr = np.multiply.outer(q, _R)
     s = np.full(q.shape, float(n_el))
     norb = len(config)

@@ -49,7 +49,8 @@ def _weights(weights, shape):
         return None
     w = np.broadcast_to(np.asarray(weights, dtype=float), shape)
     if not np.all(np.isfinite(w)) or np.any(w < 0):
-        raise InputError("argument 'weights'", "negative or non-finite weights", "finite weights >= 0 (e.g. 1/diff_err)")
+        raise InputError("argument 'weights'", "negative or non-finite weights",
+                         "finite weights >= 0 (e.g. 1/diff_err)")
     return w
 
 

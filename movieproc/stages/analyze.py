@@ -137,7 +137,8 @@ def read_differentials(path, q):
     """
     path = Path(path)
     if not path.exists():
-        raise InputError(path, "no such file", "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
+        raise InputError(path, "no such file",
+                         "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
     try:
         table = np.loadtxt(path, delimiter=",", comments="#", ndmin=2)
     except ValueError as exc:

@@ -45,8 +45,9 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     q, delay = store.read(m, "q"), store.read(m, "delay")
     diff, err = store.read(m, "diff"), store.read(m, "diff_err")
     units = m["diff"].attrs.get("units", "")
-    figs.save(figures.difference_map(q, delay, diff, q_weighted=rcfg["q_weighted"], low_count=store.read(m, "low_count"),
-                                     title=f"{name}: difference map", units=units), "difference_map.png")
+    figs.save(figures.difference_map(q, delay, diff, q_weighted=rcfg["q_weighted"],
+                                     low_count=store.read(m, "low_count"), title=f"{name}: difference map",
+                                     units=units), "difference_map.png")
     model = _read(m, "model")
     if model is not None:
         # model and data in the analysis units (absolute scale when configured)
