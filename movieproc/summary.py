@@ -32,7 +32,7 @@ def summarize_run(files, timing: dict | None = None) -> str:
         f"run: {len(info.files)} file(s): " + ", ".join(str(f) for f in info.files),
         f"shots: {n} ({', '.join(f'{c} in {Path(f).name}' for f, c in zip(info.files, info.counts, strict=True))})",
         f"detector data: {info.mode}" + (f", {info.q.size} q points {info.q[0]:.3g}-{info.q[-1]:.3g} 1/Å"
-                                         if info.mode == "curves"
+                                         if info.mode == "curves" and info.q is not None
                                          else f", frames {info.frame_shape} {info.data_dtype}"),
         f"pump on: {int(on.sum())}, pump off: {int((~on).sum())}",
         f"stage delays: {np.unique(stage).size} positions from {stage.min():.4g} to {stage.max():.4g} ps",

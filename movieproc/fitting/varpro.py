@@ -687,33 +687,20 @@ def _inv_psd(N):
     return (V / lam) @ V.T / np.outer(d, d)
 
 
-def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
-    """Gauss-Newton covariance (unscaled) of (theta, linear amplitudes).
-
-    Returns the theta block (p, p), the diagonal of the linear block (n_L,) in the
-    order [B (q-major, K), s (t-major, J), beta], and the covariance of
-    (theta, beta) for the correlation matrix.
-    """
-    nt, nq = D.shape
-    C, X, G = des.profiles, des.maps, des.curves
-    K = 0 if C is None else C.shape[1]
-    J = 0 if G is None else G.shape[0]
-    ng = 0 if X is None else X.shape[0]
-    p = len(free)
-    nL = K * nq + nt * J + ng
-    # Jacobian columns of the weighted model, dense (n_data points kept only).
+def _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol):
+    """Jacobian (n_data, p) of the weighted model in theta at fixed linear amplitudes (central differences)."""
     vidx = np.nonzero(valid.ravel())[0]
-    cols = []
 
     def fixed_model(par):
         d = model.design(par, t)
         return _model_from(d.profiles, d.maps, d.curves, sol.curves, sol.map_coef, sol.curve_coef, D.shape)
 
+    cols = []
     for i, n in enumerate(free):
         x = phat[n]
         h = JACOBIAN_STEP * (abs(x) + 1e-2)
         up, dn = dict(phat), dict(phat)
-        if x - h < lo[i]:
+        if x - h < lo[i]:  # one-sided at a bound
             up[n] = x + h
             dm = (fixed_model(up) - sol.model) / h
         elif x + h > hi[i]:
@@ -723,17 +710,29 @@ def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
             up[n], dn[n] = x + h, x - h
             dm = (fixed_model(up) - fixed_model(dn)) / (2 * h)
         cols.append((w * dm).ravel()[vidx])
-    Jt = np.array(cols).T if p else np.zeros((vidx.size, 0))
-    # Normal matrix N = [Jt, JL]^T [Jt, JL], assembled block by block from the
-    # structure of the linear design (JL itself would be n_data x n_L, too large).
+    return np.array(cols).T if free else np.zeros((vidx.size, 0))
+
+
+def _normal_matrix(Jt, des, w, valid):
+    """Normal matrix N = [Jt, JL]^T [Jt, JL] of (theta, B, s, beta), assembled block by block.
+
+    JL itself (n_data x n_L) would be too large; its blocks follow from the structure of
+    the linear design.
+    """
+    nt, nq = w.shape
+    C, X, G = des.profiles, des.maps, des.curves
+    K = 0 if C is None else C.shape[1]
+    J = 0 if G is None else G.shape[0]
+    ng = 0 if X is None else X.shape[0]
+    p = Jt.shape[1]
+    nL = K * nq + nt * J + ng
     W2 = w * w
     N = np.zeros((p + nL, p + nL))
     N[:p, :p] = Jt.T @ Jt
     iB, iS, iG = p, p + K * nq, p + K * nq + nt * J
     Vfull = np.zeros((p, nt * nq))
-    Vfull[:, vidx] = Jt.T
-    Vfull = Vfull.reshape(p, nt, nq)
-    VW = Vfull * w  # theta column times the weight of the linear columns
+    Vfull[:, np.nonzero(valid.ravel())[0]] = Jt.T
+    VW = Vfull.reshape(p, nt, nq) * w  # theta column times the weight of the linear columns
     if K:
         N[:p, iB:iS] = np.einsum("ptq,tk->pqk", VW, C).reshape(p, nq * K)
         Abb = np.einsum("tq,tk,tl->qkl", W2, C, C)
@@ -753,20 +752,27 @@ def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
     if ng:
         N[:p, iG:] = np.einsum("ptq,gtq->pg", VW, X)
         N[iG:, iG:] = np.einsum("gtq,tq,htq->gh", X, W2, X)
-    N = np.triu(N) + np.triu(N, 1).T
+    return np.triu(N) + np.triu(N, 1).T
+
+
+def _constrained_covariance(N, p, G, K, nq):
+    """Covariance M^-1 N M^-1 of the estimate under the convention (curves orthogonal to the solvent curves).
+
+    M = N + L^T L, L the constraint rows sum_q G_j(q) B_k(q) = 0 (scaled like the B block);
+    directions the data do not determine get infinite variance.
+    """
     M = N.copy()
+    J = 0 if G is None else G.shape[0]
     if K and J:
-        # Constraint rows sum_q G_j(q) B_k(q) = 0, scaled like the B block.
         scale = np.sqrt(np.mean(np.diag(N)[p: p + K * nq]))
-        L = np.zeros((K * J, p + nL))
+        L = np.zeros((K * J, N.shape[0]))
         for k in range(K):
             for j in range(J):
                 L[k * J + j, p + np.arange(nq) * K + k] = G[j] / np.linalg.norm(G[j]) * scale
         M = M + L.T @ L
     d = np.sqrt(np.diag(M))
     d[d == 0] = 1.0
-    Ms = M / np.outer(d, d)
-    lam, V = np.linalg.eigh(Ms)
+    lam, V = np.linalg.eigh(M / np.outer(d, d))
     keep = lam > PINV_RCOND * lam.max()
     Minv = (V[:, keep] / lam[keep]) @ V[:, keep].T / np.outer(d, d)
     cov = Minv @ N @ Minv
@@ -775,10 +781,26 @@ def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
         null = V[:, ~keep] / d[:, None]
         bad = np.any(np.abs(null) > NULL_SHARE * np.abs(null).max(), axis=1)
         cov[bad, bad] = np.inf
-    cov_theta = cov[:p, :p]
-    diag_lin = np.diag(cov)[p:]
+    return cov
+
+
+def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
+    """Gauss-Newton covariance (unscaled) of (theta, linear amplitudes).
+
+    Returns the theta block (p, p), the diagonal of the linear block (n_L,) in the
+    order [B (q-major, K), s (t-major, J), beta], and the covariance of
+    (theta, beta) for the correlation matrix.
+    """
+    nt, nq = D.shape
+    K = 0 if des.profiles is None else des.profiles.shape[1]
+    J = 0 if des.curves is None else des.curves.shape[0]
+    p = len(free)
+    Jt = _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol)
+    N = _normal_matrix(Jt, des, w, valid)
+    cov = _constrained_covariance(N, p, des.curves, K, nq)
+    nL = N.shape[0] - p
     sel = list(range(p)) + list(range(p + K * nq + nt * J, p + nL))
-    return cov_theta, diag_lin, cov[np.ix_(sel, sel)]
+    return cov[:p, :p], np.diag(cov)[p:], cov[np.ix_(sel, sel)]
 
 
 # ----------------------------------------------------------------------------- bootstrap

@@ -29,6 +29,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -104,7 +105,7 @@ class Data:
     spread: np.ndarray
     boot: np.ndarray | None
     units: str
-    models: object
+    models: Any
 
 
 def _one(value):
@@ -120,9 +121,10 @@ def read_data(inputs) -> Data:
     b = store.open_group(path, "binned store")
     q = store.read(b, "q")
     models = store.open_group(models_path, "model store") if models_path else None
-    mq = store.read(models, "q") if models is not None else None
-    if models is not None and (mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12)):
-        raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {path}")
+    if models is not None:
+        mq = store.read(models, "q")
+        if mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12):
+            raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {path}")
     return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "diff").astype(float),
                 err=store.read(b, "diff_err").astype(float), low=store.read(b, "low_count"),
                 off_mean=store.read(b, "off_mean").astype(float), spread=store.read(b, "delay_spread"),
@@ -184,7 +186,9 @@ def analyze(data: Data, config: dict, warnings: Warnings):
     result["svd_count"] = _svd(config["svd"], data, solute, usable, use, arrays, warnings)
     if data.models is not None and "traj_dS" in data.models and fcfg["mode"] != "none":
         # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
-        amplitude = fit.amplitudes["alpha"] * fit.populations[:, 0] if fcfg["mode"] == "trajectory" else None
+        amplitude = None
+        if fit is not None and fcfg["mode"] == "trajectory":
+            amplitude = fit.amplitudes["alpha"] * fit.populations[:, 0]
         structures, result["geometry_units"] = _structures(fcfg, data, use, basis.curves, warnings, amplitude)
         arrays.update(structures)
     return arrays, result

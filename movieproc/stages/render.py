@@ -24,7 +24,8 @@ class _Figures:
     """Where the figures go, at what resolution, and which were written."""
 
     def __init__(self, folder: Path, dpi: int):
-        self.folder, self.dpi, self.written = folder, dpi, []
+        self.folder, self.dpi = folder, dpi
+        self.written: list[Path] = []
 
     def save(self, fig, name):
         figures.save(fig, self.folder / name, self.dpi)
