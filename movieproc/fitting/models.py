@@ -40,6 +40,10 @@ from movieproc.fitting import irf, kinetics
 __all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel", "species_with_signal"]
 
 
+#: Lower bound of lifetimes, periods and damping times, ps: keeps the rates 1 / time finite.
+MIN_TIME = 1e-6
+
+
 @dataclass
 class LinearDesign:
     """Linear part of a model at fixed non-linear parameters.
@@ -115,6 +119,41 @@ class _BinWidth:
         return out
 
 
+def _transitions(transitions, m):
+    """[from, to] species indices of the network's m steps, as an (m, 2) int array."""
+    tr = np.asarray(transitions if transitions is not None else [], dtype=float)
+    if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
+        raise ParameterError("transitions", f"{transitions!r}",
+                             f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
+    if np.any(tr[:, 0] == tr[:, 1]):
+        raise ParameterError("transitions", f"{transitions!r}", "transitions between different species")
+    return tr.astype(int)
+
+
+def _initial(scheme, initial, m, n_species):
+    """Populations right after excitation (None for the sequential scheme: all in A1)."""
+    if scheme == "network":
+        init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
+        if init.shape != (n_species,) or not np.all(np.isfinite(init)):
+            raise ParameterError("initial", f"{initial!r}", f"{n_species} finite initial populations")
+        return init
+    if scheme == "parallel":
+        init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
+        if init.shape != (m,) or not np.all(np.isfinite(init)):
+            raise ParameterError("initial", f"{initial!r}", f"{m} finite initial populations")
+        return np.append(init, 0.0)
+    return None
+
+
+def _curves(curves, n_species):
+    """Given species curves as a finite (n_species, n_q) float array."""
+    B = np.atleast_2d(np.asarray(curves, dtype=float))
+    if B.shape[0] != n_species or not np.all(np.isfinite(B)):
+        raise InputError("argument 'curves'", f"shape {B.shape}",
+                         f"finite curves ({n_species}, n_q), one per contributing species")
+    return B.copy()
+
+
 class SpeciesModel:
     """Kinetic species model: dS = sum_k c_k(t; theta) B_k(q) [+ oscillation] + solvent.
 
@@ -185,18 +224,8 @@ class SpeciesModel:
         if scheme not in ("sequential", "parallel", "network"):
             raise ParameterError("scheme", repr(scheme), "'sequential', 'parallel' or 'network'")
         self.n_lifetimes, self.scheme = m, scheme
-        n_species = m + 1
-        self.transitions = None
-        if scheme == "network":
-            tr = np.asarray(transitions if transitions is not None else [], dtype=float)
-            if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
-                raise ParameterError("transitions", f"{transitions!r}",
-                                  f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
-            tr = tr.astype(int)
-            if np.any(tr[:, 0] == tr[:, 1]):
-                raise ParameterError("transitions", f"{transitions!r}", "transitions between different species")
-            self.transitions = tr
-            n_species = int(tr.max()) + 1
+        self.transitions = _transitions(transitions, m) if scheme == "network" else None
+        n_species = m + 1 if self.transitions is None else int(self.transitions.max()) + 1
         letters = ([f"A{i + 1}" for i in range(m)] + ["P"] if scheme != "network"
                    else [f"S{i}" for i in range(n_species)])
         self.species_names = letters
@@ -204,30 +233,12 @@ class SpeciesModel:
         if (not self.species or any(s < 0 or s >= n_species for s in self.species)
                 or len(set(self.species)) != len(self.species)):
             raise ParameterError("species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
-        self.initial = None
-        if scheme == "network":
-            init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
-            if init.shape != (n_species,) or not np.all(np.isfinite(init)):
-                raise ParameterError("initial", f"{initial!r}", f"{n_species} finite initial populations")
-            self.initial = init
-        if scheme == "parallel":
-            init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
-            if init.shape != (m,) or not np.all(np.isfinite(init)):
-                raise ParameterError("initial", f"{initial!r}", f"{m} finite initial populations")
-            self.initial = np.append(init, 0.0)
-        nq = None
-        if curves is not None:
-            B = np.atleast_2d(np.asarray(curves, dtype=float))
-            if B.shape[0] != len(self.species) or not np.all(np.isfinite(B)):
-                raise InputError("argument 'curves'", f"shape {B.shape}",
-                                 f"finite curves ({len(self.species)}, n_q), one per contributing species")
-            self.curves = B.copy()
-            nq = B.shape[1]
-        else:
-            self.curves = None
+        self.initial = _initial(scheme, initial, m, n_species)
+        self.curves = None if curves is None else _curves(curves, len(self.species))
+        nq = None if self.curves is None else self.curves.shape[1]
         if oscillation and curves is not None:
             raise ParameterError("oscillation", "an oscillation with given species curves",
-                              "free species curves (no curve is known for the oscillation)")
+                                 "free species curves (no curve is known for the oscillation)")
         self.oscillation = bool(oscillation)
         self.solvent, self.solvent_names = _solvent(solvent, solvent_names, nq)
         names = ["t0", "sigma"] + [f"lifetime_{i + 1}" for i in range(m)]
@@ -236,10 +247,10 @@ class SpeciesModel:
         self.param_names = tuple(names)
         self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf)}
         for i in range(m):
-            self.default_bounds[f"lifetime_{i + 1}"] = (1e-6, np.inf)
+            self.default_bounds[f"lifetime_{i + 1}"] = (MIN_TIME, np.inf)
         if self.oscillation:
-            self.default_bounds["osc_period"] = (1e-6, np.inf)
-            self.default_bounds["osc_damping"] = (1e-6, np.inf)
+            self.default_bounds["osc_period"] = (MIN_TIME, np.inf)
+            self.default_bounds["osc_damping"] = (MIN_TIME, np.inf)
         self.map_names = ["alpha"] if self.curves is not None else []
         self.profile_names = [] if self.curves is not None else [letters[s] for s in self.species]
         if self.oscillation:
@@ -394,7 +405,7 @@ class TrajectoryModel:
         self.frame_times, self.frame_curves = tf.copy(), Y.copy()
         self.solvent, self.solvent_names = _solvent(solvent, solvent_names, Y.shape[1])
         self.param_names = ("t0", "sigma", "lifetime")
-        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf), "lifetime": (1e-6, np.inf)}
+        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf), "lifetime": (MIN_TIME, np.inf)}
         self.map_names = ["alpha"]
         self.profile_names = []
         self.species_names = ["excited"]
