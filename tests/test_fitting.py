@@ -354,3 +354,14 @@ def test_fit_frames_interval_contains_truth_on_noisy_data():
     rb = structure.fit_frames(blank, np.full(blank.shape, 0.01), Y, solvent=DSDT[None], params={"M-M": r})
     assert rb.significant.mean() <= 0.06, rb.significant.mean()
     assert any("no significant solute amplitude" in w for w in rb.warnings)
+
+
+def test_species_with_signal_by_scheme():
+    # sequential A1 -> A2 -> P: the product (the recovered ground state) has no signal
+    assert models.species_with_signal(2) == ([0, 1], 3)
+    assert models.species_with_signal(2, product_signal=True) == ([0, 1, 2], 3)
+    # network S0 -> S1, S0 -> S2, S1 -> S3: the species nothing leaves (S2, S3) are final
+    assert models.species_with_signal(3, "network", [[0, 1], [0, 2], [1, 3]]) == ([0, 1], 4)
+    with pytest.raises(ValueError) as err:
+        models.species_with_signal(2, "network", [[0, 1]])
+    assert err.value.parameter == "transitions"
