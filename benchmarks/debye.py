@@ -57,7 +57,7 @@ def main(argv=None):
     pdist(pos)
 
     hist = D.distance_histograms(pos, elements, r_max=r_max)
-    _, table = D.effective_form_factors(list(hist.elements), q)
+    _, table = D.effective_form_factors(q, list(hist.elements))
     sinc = D.sinc_table(q, hist.r)
     t_table = best(lambda: D.sinc_table(q, hist.r), 3)
 
@@ -77,9 +77,9 @@ def main(argv=None):
 
     tel, tpos = cluster(n_traj_atoms, rng)
     traj = tpos[None] + rng.normal(scale=0.05, size=(n_frames, n_traj_atoms, 3))
-    model.trajectory_curves(q, traj[:4], tel, num_workers=2)  # warm up threads
+    model.trajectory_curves(q, traj[:4], tel, workers=2)  # warm up threads
     t0 = time.perf_counter()
-    model.trajectory_curves(q, traj, tel, num_workers=2)
+    model.trajectory_curves(q, traj, tel, workers=2)
     t_traj = time.perf_counter() - t0
 
     ratio = t_hist / t_pdist

@@ -67,3 +67,28 @@ class DataError(MovieprocError):
 
 class WorkflowFailed(MovieprocError):
     """A stage of the workflow failed (its error is in the log above)."""
+
+
+class ParameterError(MovieprocError, ValueError):
+    """A numeric core's argument is outside what the core accepts.
+
+    Cores name their OWN parameter (``lifetimes``, ``p0.t0``, ``transitions``),
+    never a config key; the stage that called the core maps the parameter to the
+    config key a user sets (see ``movieproc.stages.keys``).
+
+    Parameters
+    ----------
+    parameter : str
+        The core's parameter name (dotted for an entry, e.g. ``p0.sigma``).
+    found : str
+        What was found.
+    expected : str
+        What is expected.
+    """
+
+    def __init__(self, parameter: str, found: str, expected: str):
+        self.parameter, self.found, self.expected = parameter, found, expected
+        super().__init__(f"parameter '{parameter}': found {found}; expected {expected}")
+
+    def __reduce__(self):
+        return type(self), (self.parameter, self.found, self.expected)

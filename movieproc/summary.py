@@ -30,9 +30,10 @@ def summarize_run(files, timing: dict | None = None) -> str:
     stage = t["stage_delay"]
     lines = [
         f"run: {len(info.files)} file(s): " + ", ".join(str(f) for f in info.files),
-        f"shots: {n} ({', '.join(f'{c} in {Path(f).name}' for f, c in zip(info.files, info.counts))})",
+        f"shots: {n} ({', '.join(f'{c} in {Path(f).name}' for f, c in zip(info.files, info.counts, strict=True))})",
         f"detector data: {info.mode}" + (f", {info.q.size} q points {info.q[0]:.3g}-{info.q[-1]:.3g} 1/Å"
-                                         if info.mode == "curves" else f", frames {info.frame_shape} {info.data_dtype}"),
+                                         if info.mode == "curves" and info.q is not None
+                                         else f", frames {info.frame_shape} {info.data_dtype}"),
         f"pump on: {int(on.sum())}, pump off: {int((~on).sum())}",
         f"stage delays: {np.unique(stage).size} positions from {stage.min():.4g} to {stage.max():.4g} ps",
         f"timing tool: edge found on {int(ok.sum())} shots, missing on {int((~ok).sum())} "
@@ -77,14 +78,14 @@ def summarize_movie(path) -> str:
     ]
     sc = a.get("selection_counts", {})
     if sc:
+        summed = ("total", "kept", "dropped", "kept_pump_on", "kept_pump_off", "outlier_pump_on", "outlier_pump_off")
         lines.append(f"selection: kept {sc.get('kept')} of {sc.get('total')} shots; dropped per reason: "
-                     + ", ".join(f"{k} {v}" for k, v in sc.items() if k not in ("total", "kept", "dropped",
-                                                                                 "kept_pump_on", "kept_pump_off",
-                                                                                 "outlier_pump_on", "outlier_pump_off")))
+                     + ", ".join(f"{k} {v}" for k, v in sc.items() if k not in summed))
         if "outlier_pump_on" in sc:
             lines.append(f"outliers: {sc['outlier_pump_on']} pump-on, {sc['outlier_pump_off']} pump-off")
     if low.any():
-        lines.append(f"bins with too few shots: {', '.join(f'{d:.3g} ps ({c})' for d, c in zip(delay[low], n[low]))}")
+        few = ", ".join(f"{d:.3g} ps ({c})" for d, c in zip(delay[low], n[low], strict=True))
+        lines.append(f"bins with too few shots: {few}")
     if "chi2" in m:
         chi2 = store.read(m, "chi2")
         lines.append(f"fit: reduced chi2 per delay median {np.nanmedian(chi2):.2f}, max {np.nanmax(chi2):.2f}")

@@ -117,7 +117,7 @@ def solvent_curves(q, solv: dict):
     from .signals.scaling import independent_atom_scattering
 
     q = np.asarray(q, float)
-    coh, inc = independent_atom_scattering(solv["formula"], q)
+    coh, inc = independent_atom_scattering(q, solv["formula"])
 
     def s_of(q0, w):
         return coh * (1.0 + solv["peak_height"] * np.exp(-0.5 * ((q - q0) / w) ** 2)) + inc
@@ -208,7 +208,7 @@ def true_signal(scenario: dict, q, t):
     dS = solute + heat[:, None] * n_solv * dsdT[None, :]
     return {
         "dS": dS, "solute": solute, "heat": heat, "excited": alpha * excited, "distance": distance,
-        "S_total": s_ground + sum(incoherent(e, q) for e in els) + n_solv * s_solv, "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
+        "S_total": s_ground + sum(incoherent(q, e) for e in els) + n_solv * s_solv, "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
     }
 
 

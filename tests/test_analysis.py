@@ -11,12 +11,29 @@ import pytest
 
 from movieproc import config as mpconfig
 from movieproc import synth
-from movieproc.errors import ConfigError, DataError, InputError
+from movieproc.errors import ConfigError, DataError, InputError, ParameterError
 from movieproc.io import store
 from movieproc.stages import analyze, bins, delays, difference, ingest, scatter, select
+from movieproc.stages.keys import config_keys
 
 ROOT = mpconfig.ROOT
 SCENARIO = ROOT / "demo_data" / "scenario.yaml"
+#: The config sections of the rules (workflow/rules/analysis.smk): a stage that reads
+#: any other section fails here with a KeyError.
+SCATTER_SECTIONS = ("model",)
+ANALYZE_SECTIONS = ("scaling", "solvent", "svd", "fit", "differences")
+
+
+def _sections(cfg, names):
+    return dict({k: cfg[k] for k in names}, compute=cfg["compute"])
+
+
+def _scatter(cfg, shots, out):
+    scatter.run({"shots": shots, "structures": []}, out, _sections(cfg, SCATTER_SECTIONS))
+
+
+def _run_analyze(binned, models, out, cfg):
+    analyze.run({"binned": binned, "models": [models] if models else []}, out, _sections(cfg, ANALYZE_SECTIONS))
 
 
 def _config(tmp, *extra):
@@ -41,15 +58,13 @@ def reduced(tmp_path_factory):
              d / "bins.zarr", cfg)
     difference.run({"shots": d / "shots.zarr", "selection": d / "selection.zarr", "bins": d / "bins.zarr"},
                    d / "binned.zarr", cfg)
-    q = store.read(store.open_group(d / "shots.zarr"), "q")
-    m = cfg["model"]
-    scatter.run(m["ground"], m["trajectory"], {}, q, d / "models.zarr", {})
+    _scatter(cfg, d / "shots.zarr", d / "models.zarr")
     return d
 
 
 def _analyze(d, name, *extra):
     cfg = _config(d, *extra)
-    analyze.run(d / "binned.zarr", d / "models.zarr", d / name, cfg)
+    _run_analyze(d / "binned.zarr", d / "models.zarr", d / name, cfg)
     return store.open_group(d / name)
 
 
@@ -145,8 +160,8 @@ def test_species_mode_with_free_curves(reduced):
     a = _analyze(reduced, "species.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[20.0]",
                  "fit.delay_range_ps=[1.5, 200]")
     p = a.attrs["fit_parameters"]
-    assert abs(p["tau_1"]["value"] / 30.0 - 1) < 0.1
-    assert abs(p["tau_1"]["value"] - 30.0) <= 3 * p["tau_1"]["error"]
+    assert abs(p["lifetime_1"]["value"] / 30.0 - 1) < 0.1
+    assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
     assert a.attrs["fit_converged"]
 
 
@@ -155,10 +170,11 @@ def test_bad_analysis_input(reduced, tmp_path):
         _analyze(reduced, "x.zarr", "fit.mode=species", "fit.species_curves=model")
     assert not (reduced / "x.zarr").exists()
     # a model store on another q grid
-    scatter.run(str(ROOT / "demo_data" / "ground.xyz"), [str(ROOT / "demo_data" / "excited_trajectory.xyz")], {},
-                np.linspace(0.5, 4.0, 50), tmp_path / "other.zarr", {})
+    shots = store.new_group(tmp_path / "other_shots.zarr")
+    store.write_array(shots, "q", np.linspace(0.5, 4.0, 50), ["q"], units="1/Å")
+    _scatter(_config(reduced), tmp_path / "other_shots.zarr", tmp_path / "other.zarr")
     with pytest.raises(InputError, match="q grid"):
-        analyze.run(reduced / "binned.zarr", tmp_path / "other.zarr", tmp_path / "y.zarr", _config(reduced))
+        _run_analyze(reduced / "binned.zarr", tmp_path / "other.zarr", tmp_path / "y.zarr", _config(reduced))
     assert not (tmp_path / "y.zarr").exists()
     # too few delays: below fit.min_delays, and below the number of parameters
     with pytest.raises(DataError, match="min_delays"):
@@ -183,7 +199,7 @@ def test_bootstrap_over_shots(reduced):
     ok = ~store.read(b, "low_count")
     ratio = np.nanstd(boot[:, ok] - diff[None, ok], axis=0) / err[ok]
     assert 0.7 < np.nanmedian(ratio) < 1.4, np.nanmedian(ratio)
-    analyze.run(reduced / "binned_boot.zarr", reduced / "models.zarr", reduced / "boot.zarr", cfg)
+    _run_analyze(reduced / "binned_boot.zarr", reduced / "models.zarr", reduced / "boot.zarr", cfg)
     p = store.open_group(reduced / "boot.zarr").attrs["fit_parameters"]
     for name in ("t0", "sigma", "lifetime", "alpha"):
         assert "12 replicates over shots" in p[name]["bootstrap"]
@@ -199,7 +215,7 @@ def test_network_kinetics_and_its_validation(reduced):
     a = _analyze(reduced, "network.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
                  "fit.network=[[0, 1]]", "fit.lifetimes_ps=[20.0]", "fit.delay_range_ps=[1.5, 200]")
     p = a.attrs["fit_parameters"]
-    assert abs(p["tau_1"]["value"] - 30.0) <= 3 * p["tau_1"]["error"]
+    assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
     # transitions that do not match the lifetimes, or a self-transition: refused with the key named
     with pytest.raises(ConfigError, match="fit.network"):
         _analyze(reduced, "bad.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
@@ -216,7 +232,7 @@ def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
         cfg = _config(reduced, f"differences.normalization={mode}")
         difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
                         "bins": reduced / "bins.zarr"}, tmp_path / f"binned_{mode}.zarr", cfg)
-        analyze.run(tmp_path / f"binned_{mode}.zarr", reduced / "models.zarr", tmp_path / f"{mode}.zarr", cfg)
+        _run_analyze(tmp_path / f"binned_{mode}.zarr", reduced / "models.zarr", tmp_path / f"{mode}.zarr", cfg)
         p = store.open_group(tmp_path / f"{mode}.zarr").attrs["fit_parameters"]["alpha"]
         # scenario truth 0.15 (demo_data/scenario.yaml), within 3 of its standard errors
         assert abs(p["value"] - 0.15) < 3 * p["error"], (mode, p)
@@ -237,6 +253,68 @@ def test_fit_errors_name_the_config_keys(reduced):
         _analyze(reduced, "rep.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[10.0, 10.0]")
     with pytest.raises(ConfigError, match="model.photon_energy_kev"):
         _config(reduced, "model.anomalous=true")
+
+
+def _schema_has(key):
+    """Whether a dotted config key exists in the schema (an entry of a free-form mapping counts)."""
+    node = mpconfig.load_schema()
+    for part in key.split("."):
+        props = node.get("properties", {})
+        if part in props:
+            node = props[part]
+        elif isinstance(node.get("additionalProperties"), dict):
+            node = node["additionalProperties"]
+        else:
+            return False
+    return True
+
+
+def test_schema_lookup_refuses_keys_that_do_not_exist():
+    # the helper below must be able to fail: keys the cores once named but no user can set
+    assert _schema_has("fit.lifetimes_ps") and _schema_has("fit.geometry.Ir-Ir")
+    for gone in ("fit.initial.t0", "fit.kinetics.rates", "scatter.energy", "scatter.num_workers", "fit.bounds"):
+        assert not _schema_has(gone), gone
+
+
+@pytest.mark.parametrize("table", [analyze.CONFIG_KEYS, analyze.NETWORK_KEYS, scatter.CONFIG_KEYS])
+def test_every_mapped_key_exists_in_the_schema(table):
+    missing = [key for key in table.values() if not _schema_has(key)]
+    assert not missing, missing
+
+
+def test_unmapped_core_errors_pass_unchanged():
+    # a core parameter no config sets is a bug of the stage, not a config problem: it is not renamed
+    with pytest.raises(ParameterError) as err, config_keys(analyze.CONFIG_KEYS):
+        raise ParameterError("bounds.t0", "(1, 0)", "lower < upper")
+    assert err.value.parameter == "bounds.t0"
+    with pytest.raises(ConfigError) as err2, config_keys(analyze.CONFIG_KEYS):
+        raise ParameterError("p0.lifetime_3", "0", "a value within the bounds")
+    assert err2.value.key == "fit.lifetimes_ps"
+
+
+SPECIES_FREE = ("fit.mode=species", "fit.species_curves=free")
+
+
+@pytest.mark.parametrize("overrides, key", [
+    # start values the schema accepts (> 0) but the model's bounds (lifetimes >= 1e-6 ps) refuse
+    (("fit.lifetimes_ps=[1.0e-7]",), "fit.lifetimes_ps"),
+    ((*SPECIES_FREE, "fit.lifetimes_ps=[1.0e-7]"), "fit.lifetimes_ps"),
+    ((*SPECIES_FREE, "fit.oscillation=true", "fit.oscillation_damping_ps=1.0e-7"), "fit.oscillation_damping_ps"),
+    ((*SPECIES_FREE, "fit.oscillation=true", "fit.oscillation_period_ps=1.0e-7"), "fit.oscillation_period_ps"),
+    # repeated rates: no closed-form IRF convolution
+    ((*SPECIES_FREE, "fit.lifetimes_ps=[10.0, 10.0]"), "fit.lifetimes_ps"),
+    ((*SPECIES_FREE, "fit.kinetics=network", "fit.network=[[0, 1], [1, 2]]", "fit.lifetimes_ps=[5.0, 5.0]"),
+     "fit.network"),
+    # a species index beyond the scheme's species
+    ((*SPECIES_FREE, "fit.signal_species=[7]"), "fit.signal_species"),
+    ((*SPECIES_FREE, "fit.kinetics=network", "fit.network=[[1, 1]]", "fit.lifetimes_ps=[20.0]"), "fit.network"),
+])
+def test_fit_errors_through_the_stage_name_real_keys(reduced, overrides, key):
+    with pytest.raises(ConfigError) as err:
+        _analyze(reduced, "keys.zarr", *overrides)
+    assert err.value.key == key
+    assert _schema_has(err.value.key)
+    assert not (reduced / "keys.zarr").exists()
 
 
 def test_energy_nuisance_term(reduced):

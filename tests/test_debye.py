@@ -29,7 +29,7 @@ def demo_complex(ir_ir=2.90):
 
 def brute_force(q, positions, elements):
     """Independent double loop in float64: sum_ij f_i f_j sin(q r_ij)/(q r_ij)."""
-    f = {e: ff.form_factor(e, q) for e in set(elements)}
+    f = {e: ff.form_factor(q, e) for e in set(elements)}
     s = np.zeros_like(q)
     for i in range(len(elements)):
         for j in range(len(elements)):
@@ -43,7 +43,7 @@ def brute_force(q, positions, elements):
 
 def nearest_bin_debye(q, positions, elements, dr):
     """Histogram path with nearest-bin assignment (what linear sharing replaces)."""
-    f = {e: ff.form_factor(e, q) for e in set(elements)}
+    f = {e: ff.form_factor(q, e) for e in set(elements)}
     s = sum(f[e] ** 2 for e in elements)
     for i in range(len(elements)):
         for j in range(i + 1, len(elements)):
@@ -66,7 +66,7 @@ def diatomic(q, f1, f2, r, sigma=0.0):
 def test_diatomic_exact_path(pair, r):
     pos = np.array([[0.0, 0.0, 0.0], [0.3, -0.4, 0.0]])
     pos[1] *= r / np.linalg.norm(pos[1])
-    ref = diatomic(Q, ff.form_factor(pair[0], Q), ff.form_factor(pair[1], Q), r)
+    ref = diatomic(Q, ff.form_factor(Q, pair[0]), ff.form_factor(Q, pair[1]), r)
     # float32 sinc: |error| <= ~6e-8 per pair (debye.py notes) -> 1e-6 of S is ample
     np.testing.assert_allclose(D.debye(Q, pos, pair), ref, rtol=0, atol=1e-6 * ref.max())
 
@@ -76,7 +76,7 @@ def test_diatomic_histogram_path_linear_interpolation():
     # |error| <= dr^2/8 max|d^2 sinc(qr)/dr^2| <= dr^2 q^2 / 24 (|sinc''(x)| <= 1/3)
     r, dr = 2.3456, 0.01
     pos = np.array([[0.0, 0.0, 0.0], [r, 0.0, 0.0]])
-    f1, f2 = ff.form_factor("Ir", Q), ff.form_factor("Cl", Q)
+    f1, f2 = ff.form_factor(Q, "Ir"), ff.form_factor(Q, "Cl")
     got = D.debye_histogram(Q, pos, ["Ir", "Cl"], dr=dr)
     bound = 2 * f1 * f2 * dr**2 * Q**2 / 24 + 1e-6 * (f1**2 + f2**2)
     assert np.all(np.abs(got - diatomic(Q, f1, f2, r)) <= bound)
@@ -85,7 +85,7 @@ def test_diatomic_histogram_path_linear_interpolation():
 def test_damping_closed_form_both_paths():
     r, sigma = 2.9, 0.07
     pos = np.array([[0.0, 0.0, 0.0], [0.0, 0.0, r]])
-    f = ff.form_factor("Ir", Q)
+    f = ff.form_factor(Q, "Ir")
     ref = diatomic(Q, f, f, r, sigma)
     tol = 1e-6 * ref.max()
     np.testing.assert_allclose(D.debye(Q, pos, ["Ir", "Ir"], damping=sigma), ref, atol=tol)
@@ -98,12 +98,12 @@ def test_damping_closed_form_both_paths():
 def test_anomalous_and_excluded_volume_diatomic():
     r, e, rho0 = 2.5, 11.0, 0.334
     pos = np.array([[0.0, 0.0, 0.0], [r, 0.0, 0.0]])
-    f1 = ff.form_factor("Ir", Q, energy=e, anomalous=True) - ff.dummy_form_factor("Ir", Q, rho0)
-    f2 = ff.form_factor("Cl", Q, energy=e, anomalous=True) - ff.dummy_form_factor("Cl", Q, rho0)
+    f1 = ff.form_factor(Q, "Ir", photon_energy=e, anomalous=True) - ff.dummy_form_factor(Q, "Ir", rho0)
+    f2 = ff.form_factor(Q, "Cl", photon_energy=e, anomalous=True) - ff.dummy_form_factor(Q, "Cl", rho0)
     ref = diatomic(Q, f1, f2, r)
-    got = D.debye(Q, pos, ["Ir", "Cl"], energy=e, anomalous=True, excluded_volume=rho0)
+    got = D.debye(Q, pos, ["Ir", "Cl"], photon_energy=e, anomalous=True, excluded_volume=rho0)
     np.testing.assert_allclose(got, ref, atol=1e-6 * np.abs(ref).max())
-    got_h = D.debye_histogram(Q, pos, ["Ir", "Cl"], energy=e, anomalous=True, excluded_volume=rho0)
+    got_h = D.debye_histogram(Q, pos, ["Ir", "Cl"], photon_energy=e, anomalous=True, excluded_volume=rho0)
     np.testing.assert_allclose(got_h, ref, atol=1e-4 * np.abs(ref).max())
 
 
@@ -257,7 +257,7 @@ def test_invariant_under_permutation_rotation_translation(data):
 
 def test_single_atom_is_f_squared():
     # closed form: one atom scatters |f|^2 (no pairs)
-    f = ff.form_factor("Ir", Q, energy=11.0, anomalous=True)
-    for s in (D.debye(Q, [[1.0, 2.0, 3.0]], ["Ir"], energy=11.0, anomalous=True),
-              D.debye_histogram(Q, [[1.0, 2.0, 3.0]], ["Ir"], energy=11.0, anomalous=True)):
+    f = ff.form_factor(Q, "Ir", photon_energy=11.0, anomalous=True)
+    for s in (D.debye(Q, [[1.0, 2.0, 3.0]], ["Ir"], photon_energy=11.0, anomalous=True),
+              D.debye_histogram(Q, [[1.0, 2.0, 3.0]], ["Ir"], photon_energy=11.0, anomalous=True)):
         np.testing.assert_allclose(s, np.abs(f) ** 2, rtol=1e-12)

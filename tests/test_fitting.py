@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import linalg
 
-from movieproc.errors import ConfigError, DataError
+from movieproc.errors import DataError
 from movieproc.fitting import models, structure, varpro
 
 Q = np.linspace(0.5, 4.0, 70)  # 1/Å
@@ -36,7 +36,7 @@ def sequential_data(rng, truth, heat=0.03, noise=0.01):
     Populations from the textbook closed form (A = e^{-k1 t}, B = k1/(k2-k1)(...)) on a
     fine grid, convolved with the Gaussian IRF by trapezoid quadrature: an independent
     route from the closed-form IRF convolution inside the fit."""
-    k1, k2 = 1 / truth["tau_1"], 1 / truth["tau_2"]
+    k1, k2 = 1 / truth["lifetime_1"], 1 / truth["lifetime_2"]
     u = np.arange(0, 400, 0.002)
     A = np.exp(-k1 * u)
     Bp = k1 / (k2 - k1) * (np.exp(-k1 * u) - np.exp(-k2 * u))
@@ -51,8 +51,8 @@ def sequential_data(rng, truth, heat=0.03, noise=0.01):
     return clean + rng.normal(size=clean.shape) * err, err, pops
 
 
-TRUTH_SEQ = dict(t0=0.15, sigma=0.12, tau_1=2.0, tau_2=25.0)
-START_SEQ = dict(t0=0.0, sigma=0.2, tau_1=1.5, tau_2=15.0)
+TRUTH_SEQ = dict(t0=0.15, sigma=0.12, lifetime_1=2.0, lifetime_2=25.0)
+START_SEQ = dict(t0=0.0, sigma=0.2, lifetime_1=1.5, lifetime_2=15.0)
 
 
 # --------------------------------------------------------------------- linear solve
@@ -125,7 +125,7 @@ def test_species_fit_with_given_curves_recovers_alpha():
     assert abs(r.amplitudes["alpha"] - 0.2) < 3 * r.amplitudes_err["alpha"]
     for n in r.free:
         assert abs(r.params[n] - TRUTH_SEQ[n]) < 3 * r.stderr[n], (n, r.params[n], r.stderr[n])
-    assert r.corr_names == ["t0", "sigma", "tau_1", "tau_2", "alpha"]
+    assert r.corr_names == ["t0", "sigma", "lifetime_1", "lifetime_2", "alpha"]
     np.testing.assert_allclose(np.diag(r.correlation), 1.0, atol=1e-12)
     # Solvent coefficient per delay: true dT = 0.03 * population of the ground state.
     _, _, pops = sequential_data(np.random.default_rng(10), TRUTH_SEQ)
@@ -138,14 +138,14 @@ def test_species_fit_with_damped_oscillation():
     # closed-form IRF convolutions (validated against quad in test_kinetics.py).
     from movieproc.fitting import irf
     delay = np.concatenate([np.linspace(-0.5, 2.0, 60), np.logspace(0.4, 2, 12)])
-    tr = dict(t0=0.05, sigma=0.06, tau_1=8.0, osc_period=0.4, osc_damping=0.5)
+    tr = dict(t0=0.05, sigma=0.06, lifetime_1=8.0, osc_period=0.4, osc_damping=0.5)
     model = models.SpeciesModel(1, species=[0], oscillation=True, solvent=DSDT[None])
-    pop = irf.exp_gauss(delay, 1 / tr["tau_1"], tr["t0"], tr["sigma"])
+    pop = irf.exp_gauss(delay, 1 / tr["lifetime_1"], tr["t0"], tr["sigma"])
     osc = irf.damped_oscillation_gauss(delay, tr["osc_damping"], 2 * np.pi / tr["osc_period"], tr["t0"], tr["sigma"])
     D0 = np.outer(pop, SPECIES_B[0]) + np.outer(osc, SPECIES_B[1])
     err = np.full(D0.shape, 0.01)
     D = D0 + np.random.default_rng(80).normal(size=D0.shape) * err
-    r = varpro.fit(model, D, err, delay, dict(t0=0.0, sigma=0.1, tau_1=5.0, osc_period=0.38, osc_damping=0.8))
+    r = varpro.fit(model, D, err, delay, dict(t0=0.0, sigma=0.1, lifetime_1=5.0, osc_period=0.38, osc_damping=0.8))
     assert r.converged and r.warnings == []
     for n, v in tr.items():
         assert abs(r.params[n] - v) < 3 * r.stderr[n], (n, r.params[n], r.stderr[n])
@@ -190,11 +190,12 @@ def test_fit_refuses_bad_setups():
     # 4 free parameters + 2 free-curve profiles need more than 6 delays.
     with pytest.raises(DataError, match="too few delays"):
         varpro.fit(model, D[:6], err[:6], DELAY[:6], START_SEQ)
-    with pytest.raises(ConfigError) as e:
+    with pytest.raises(ValueError) as e:
         varpro.fit(model, D, err, DELAY, dict(START_SEQ, sigma=-1.0))
-    assert e.value.key == "fit.initial.sigma"
-    with pytest.raises(ConfigError):
+    assert e.value.parameter == "p0.sigma"
+    with pytest.raises(ValueError) as e:
         varpro.fit(model, D, err, DELAY, {"t0": 0.0})
+    assert e.value.parameter == "p0.sigma"
 
     class Broken:  # a model whose curves are not finite at the start
         param_names = ("t0",)
@@ -353,3 +354,14 @@ def test_fit_frames_interval_contains_truth_on_noisy_data():
     rb = structure.fit_frames(blank, np.full(blank.shape, 0.01), Y, solvent=DSDT[None], params={"M-M": r})
     assert rb.significant.mean() <= 0.06, rb.significant.mean()
     assert any("no significant solute amplitude" in w for w in rb.warnings)
+
+
+def test_species_with_signal_by_scheme():
+    # sequential A1 -> A2 -> P: the product (the recovered ground state) has no signal
+    assert models.species_with_signal(2) == ([0, 1], 3)
+    assert models.species_with_signal(2, product_signal=True) == ([0, 1, 2], 3)
+    # network S0 -> S1, S0 -> S2, S1 -> S3: the species nothing leaves (S2, S3) are final
+    assert models.species_with_signal(3, "network", [[0, 1], [0, 2], [1, 3]]) == ([0, 1], 4)
+    with pytest.raises(ValueError) as err:
+        models.species_with_signal(2, "network", [[0, 1]])
+    assert err.value.parameter == "transitions"

@@ -36,7 +36,7 @@ def hubbell_f(z, s):
     ],
 )
 def test_f0_against_hubbell_tables(element, z, tol_low, tol_high):
-    f = ff.form_factor(element, Q)
+    f = ff.form_factor(Q, element)
     ref = hubbell_f(z, S)
     rel = np.abs(f / ref - 1)
     assert rel[S <= 0.5].max() < tol_low
@@ -46,7 +46,7 @@ def test_f0_against_hubbell_tables(element, z, tol_low, tol_high):
 def test_f0_hydrogen_against_hubbell_absolute():
     # reference: xraylib.FF_Rayl(1, s). f_H falls to ~1e-3 e at s = 1.5, so compare in
     # absolute terms: 1e-3 e is the fit accuracy scale of the 5-Gaussian approximation.
-    assert np.abs(ff.form_factor("H", Q) - hubbell_f(1, S)).max() < 1e-3
+    assert np.abs(ff.form_factor(Q, "H") - hubbell_f(1, S)).max() < 1e-3
 
 
 def test_hydrogen_free_atom_closed_form():
@@ -54,7 +54,7 @@ def test_hydrogen_free_atom_closed_form():
     q = np.linspace(0.0, 4 * np.pi * 6.0, 500)
     exact = (1.0 + (q * A0 / 2.0) ** 2) ** -2
     # tolerance 1e-3 e: the Waasmaier-Kirfel fit's residual scale for H (measured 4e-4)
-    assert np.abs(ff.form_factor("H", q) - exact).max() < 1e-3
+    assert np.abs(ff.form_factor(q, "H") - exact).max() < 1e-3
 
 
 def test_matches_periodictable_fxrayatq():
@@ -65,8 +65,8 @@ def test_matches_periodictable_fxrayatq():
     q = np.linspace(0, 20, 101)
     for el in ["H", "C", "O", "Cl", "Fe", "Ir", "Fe2+", "O2-"]:
         ref = cromermann.fxrayatq(el, q)
-        np.testing.assert_allclose(ff.form_factor(el, q), ref, rtol=1e-12, atol=1e-12)
-    np.testing.assert_allclose(ff.form_factor("Cl-", q), cromermann.fxrayatq("Cl1-", q), rtol=1e-12)
+        np.testing.assert_allclose(ff.form_factor(q, el), ref, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(ff.form_factor(q, "Cl-"), cromermann.fxrayatq("Cl1-", q), rtol=1e-12)
 
 
 @pytest.mark.parametrize("element, n", [("H", 1), ("C", 6), ("O", 8), ("Cl", 17), ("Fe", 26),
@@ -77,13 +77,13 @@ def test_forward_scattering_counts_electrons(element, n):
     # exactly; its largest deviation over all tabulated entries is 0.038 e (Os, 5e-4 of
     # Z), so the tolerance is 1e-3 of the electron count.
     assert ff.electron_count(element) == n
-    assert ff.form_factor(element, [0.0])[0] == pytest.approx(n, rel=1e-3)
+    assert ff.form_factor([0.0], element)[0] == pytest.approx(n, rel=1e-3)
 
 
 def test_ion_spellings_agree():
     q = np.linspace(0, 10, 11)
-    np.testing.assert_array_equal(ff.form_factor("Fe2+", q), ff.form_factor("Fe+2", q))
-    np.testing.assert_array_equal(ff.form_factor("Cl-", q), ff.form_factor("Cl1-", q))
+    np.testing.assert_array_equal(ff.form_factor(q, "Fe2+"), ff.form_factor(q, "Fe+2"))
+    np.testing.assert_array_equal(ff.form_factor(q, "Cl-"), ff.form_factor(q, "Cl1-"))
     assert ff.parse_element("O2-") == ("O", -2)
     assert ff.parse_element("ir") == ("Ir", 0)
 
@@ -91,28 +91,29 @@ def test_ion_spellings_agree():
 def test_table_unique_order_and_shape():
     els = ["Ir", "Cl", "Ir", "C", "O", "C", "O", "Cl"]
     q = np.linspace(0, 8, 40)
-    unique, table = ff.form_factor_table(els, q)
+    unique, table = ff.form_factor_table(q, els)
     assert unique == ["Ir", "Cl", "C", "O"]
     assert table.shape == (4, 40) and table.dtype == np.float64
-    np.testing.assert_array_equal(table[2], ff.form_factor("C", q))
-    _, ctable = ff.form_factor_table(els, q, energy=12.0, anomalous=True)
+    np.testing.assert_array_equal(table[2], ff.form_factor(q, "C"))
+    _, ctable = ff.form_factor_table(q, els, photon_energy=12.0, anomalous=True)
     assert ctable.dtype == np.complex128
 
 
 @pytest.mark.parametrize("bad", ["Xx", "Qq2+", "Ir2+", "C7", "", "Fe++"])
 def test_unknown_symbols_raise_naming_the_symbol(bad):
     with pytest.raises(InputError) as err:
-        ff.form_factor(bad, [0.0, 1.0])
+        ff.form_factor([0.0, 1.0], bad)
     assert f"'{bad}'" in str(err.value)
 
 
 def test_q_range_checked():
     with pytest.raises(InputError, match="q up to"):
-        ff.form_factor("O", [0.0, 80.0])  # s > 6 1/Å, outside the fit
+        ff.form_factor([0.0, 80.0], "O")  # s > 6 1/Å, outside the fit
     with pytest.raises(InputError, match="negative"):
-        ff.form_factor("O", [-1.0])
-    with pytest.raises(InputError, match="energy"):
-        ff.form_factor("O", [1.0], anomalous=True)
+        ff.form_factor([-1.0], "O")
+    with pytest.raises(ValueError, match="photon energy") as err:
+        ff.form_factor([1.0], "O", anomalous=True)
+    assert err.value.parameter == "photon_energy"
 
 
 @pytest.mark.parametrize(
@@ -136,9 +137,9 @@ def test_anomalous_fprime_below_edge(element, z, below, edge_energy):
         assert abs(f1 - ref) < 0.10 * abs(ref) + 0.1
         values.append(f1)
     assert values[1] < values[0]  # more negative nearer the edge
-    f = ff.form_factor(element, [0.0, 2.0], energy=below[1], anomalous=True)
+    f = ff.form_factor([0.0, 2.0], element, photon_energy=below[1], anomalous=True)
     assert f.dtype == np.complex128
-    assert f[0].real == pytest.approx(ff.form_factor(element, [0.0])[0] + values[1])
+    assert f[0].real == pytest.approx(ff.form_factor([0.0], element)[0] + values[1])
 
 
 @pytest.mark.parametrize("element, z, energy", [("Fe", 26, 8.0), ("Ir", 77, 12.0), ("O", 8, 12.0)])
@@ -163,7 +164,7 @@ def test_incoherent_hydrogen_exact():
     # f = [1 + (q a0/2)^2]^-2; only quadrature error remains (1e-8).
     q = np.linspace(0, 30, 301)
     f = (1.0 + (q * A0 / 2.0) ** 2) ** -2
-    np.testing.assert_allclose(ff.incoherent("H", q), 1 - f**2, atol=1e-8)
+    np.testing.assert_allclose(ff.incoherent(q, "H"), 1 - f**2, atol=1e-8)
 
 
 @pytest.mark.parametrize("element, z", [("C", 6), ("O", 8), ("Cl", 17), ("Fe", 26), ("Ir", 77)])
@@ -175,8 +176,8 @@ def test_incoherent_against_hubbell(element, z):
     s = np.linspace(0.01, 1.5, 80)
     q = 4 * np.pi * s
     ref = np.array([xraylib.SF_Compt(z, float(x)) for x in s])
-    got = ff.incoherent(element, q)
-    total = ff.form_factor(element, q) ** 2 + ref
+    got = ff.incoherent(q, element)
+    total = ff.form_factor(q, element) ** 2 + ref
     assert np.max(np.abs(got - ref) / total) < 0.03
     assert np.max(np.abs(got - ref)[s >= 0.5] / ref[s >= 0.5]) < 0.10
 
@@ -186,7 +187,7 @@ def test_incoherent_limits():
     # At s = 50 1/Å even Ir's K shell scatters incoherently: xraylib.SF_Compt(77, 50)
     # = 76.997, so 1e-3 of N covers what is left of the approach.
     for el, n in [("O", 8), ("O2-", 10), ("Ir", 77), ("Fe3+", 23)]:
-        s = ff.incoherent(el, [0.0, 4 * np.pi * 50.0])
+        s = ff.incoherent([0.0, 4 * np.pi * 50.0], el)
         assert s[0] == pytest.approx(0.0, abs=1e-9)
         assert s[1] == pytest.approx(n, rel=1e-3)
 
@@ -198,7 +199,7 @@ def test_dummy_atom_closed_form():
 
     q = np.linspace(0, 5, 11)
     v = 4 / 3 * np.pi * vdw_radii[8] ** 3
-    np.testing.assert_allclose(ff.dummy_form_factor("O", q, 0.334),
+    np.testing.assert_allclose(ff.dummy_form_factor(q, "O", 0.334),
                                0.334 * v * np.exp(-v ** (2 / 3) * q**2 / (4 * np.pi)), rtol=1e-12)
     # 1 g/cm^3 of water: 10 e per 18.015 g/mol -> 0.334 e/Å^3 (docs/METHODS.md sec 5)
     assert ff.WATER_ELECTRON_DENSITY == pytest.approx(0.334, rel=2e-3)
@@ -207,6 +208,6 @@ def test_dummy_atom_closed_form():
 def test_inputs_not_modified():
     q = np.linspace(0, 5, 10)
     keep = q.copy()
-    ff.form_factor("Ir", q, energy=11.0, anomalous=True)
-    ff.incoherent("Ir", q)
+    ff.form_factor(q, "Ir", photon_energy=11.0, anomalous=True)
+    ff.incoherent(q, "Ir")
     np.testing.assert_array_equal(q, keep)

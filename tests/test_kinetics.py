@@ -5,7 +5,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import integrate, signal
 
-from movieproc.errors import ConfigError, InputError
+from movieproc.errors import InputError
 from movieproc.fitting import irf, kinetics
 
 
@@ -243,16 +243,16 @@ def test_rate_matrix_validation_names_key():
         np.array([[-1.0, 0.0], [np.nan, 0.0]]),               # not finite
     ]
     for K in bad:
-        with pytest.raises(ConfigError) as e:
+        with pytest.raises(ValueError) as e:
             kinetics.populations(K, [1.0, 0.0], np.array([0.0, 1.0]))
-        assert e.value.key == "fit.kinetics.rates"
-    with pytest.raises(ConfigError) as e:
+        assert e.value.parameter == "rates"
+    with pytest.raises(ValueError) as e:
         kinetics.sequential_rate_matrix([1.0, -0.2])
-    assert e.value.key == "fit.kinetics.rates"
+    assert e.value.parameter == "rates"
     # Repeated rates have no closed-form IRF convolution here: refused, not garbage.
-    with pytest.raises(ConfigError) as e:
+    with pytest.raises(ValueError) as e:
         kinetics.sequential([0.5, 0.5], np.array([0.0, 1.0]), sigma=0.1)
-    assert e.value.key == "fit.kinetics.rates"
+    assert e.value.parameter == "rates"
     # Repeated rates are fine without IRF (expm has no such restriction): A -> B with
     # k1 = k2 = k gives B = k t exp(-k t) (limit of the textbook form).
     t = np.linspace(0, 5, 6)

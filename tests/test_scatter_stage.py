@@ -3,7 +3,9 @@
 import numpy as np
 import pytest
 
+from movieproc import config as mpconfig
 from movieproc.errors import ConfigError, InputError
+from movieproc.io import store
 from movieproc.io.structures import write_trajectory
 from movieproc.scattering import debye as D
 from movieproc.scattering import formfactors as ff
@@ -42,7 +44,7 @@ def trajectory(n_frames=30, seed=0):
 
 def test_trajectory_curves_match_exact_per_frame():
     pos, _ = trajectory(12)
-    got = model.trajectory_curves(Q, pos, ELEMENTS, num_workers=2, frames_per_task=5)
+    got = model.trajectory_curves(Q, pos, ELEMENTS, workers=2, frames_per_task=5)
     exact = np.array([D.debye(Q, p, ELEMENTS) for p in pos])
     # docs/METHODS.md sec 5: linear sharing at dr = 0.01 Å keeps errors ~1e-5 of S; require 1e-4
     assert np.abs(got - exact).max() < 1e-4 * np.abs(exact).max()
@@ -54,7 +56,7 @@ def test_difference_curves_and_ensemble_mean():
     g = ground_structure()
     members = np.stack([trajectory(8, seed=s)[0] for s in range(3)])
     mean, each = model.ensemble_difference_curves(Q, members, ELEMENTS, g, return_members=True,
-                                                  num_workers=2)
+                                                  workers=2)
     exact = np.array([[D.debye(Q, p, ELEMENTS) for p in m] for m in members]) - D.debye(Q, g, ELEMENTS)
     assert each.shape == (3, 8, Q.size)
     # issue requirement: histogram path within 1e-3 of max|dS|
@@ -82,7 +84,7 @@ def test_cage_term_gaussian_closed_form():
     r = np.linspace(0.0, 12.0, 6001)
     amp, width = 0.8, 0.6
     g = 1.0 + amp * np.exp(-((r - 0.0) ** 2) / (2 * width**2))
-    fa, fb = ff.form_factor("Ir", q), ff.form_factor("O", q)
+    fa, fb = ff.form_factor(q, "Ir"), ff.form_factor(q, "O")
     got = model.cage_term(q, r, g, fa, fb, n_a=1, n_b=300, volume=9000.0, window=None)
     ref = 2 * fa * fb * (300 / 9000.0) * amp * (2 * np.pi) ** 1.5 * width**3 * np.exp(-(q * width) ** 2 / 2)
     # trapezoid with dr = 0.002 Å on a smooth integrand: relative error ~1e-7; 1e-5 of max
@@ -158,13 +160,29 @@ def _inputs(tmp_path):
     return g, paths, excited
 
 
+def _shots(tmp_path, q=Q):
+    """A shots store holding only its q grid (all the scatter stage reads of it)."""
+    group = store.new_group(tmp_path / "shots.zarr")
+    store.write_array(group, "q", np.asarray(q, float), ["q"], units="1/Å")
+    return tmp_path / "shots.zarr"
+
+
+def _config(tmp_path, *overrides):
+    """The validated config sections of the scatter rule (model, plus compute)."""
+    cfg = mpconfig.load(mpconfig.ROOT / "config" / "config.yaml",
+                        [f"output_dir={tmp_path}", f"model.ground={tmp_path / 'ground.xyz'}", "model.trajectory=[]",
+                         "model.species={}", *overrides])
+    return {"model": cfg["model"], "compute": cfg["compute"]}
+
+
 def test_stage_writes_labelled_store(tmp_path):
     import xarray as xr
 
     g, paths, excited = _inputs(tmp_path)
     out = tmp_path / "scatter.zarr"
-    scatter.run(tmp_path / "ground.xyz", paths, {"excited": tmp_path / "excited.xyz"}, Q, out,
-                {"dr": 0.01, "num_workers": 2})
+    cfg = _config(tmp_path, "model.dr=0.01", "compute.workers=2", f"model.trajectory={[str(p) for p in paths]}",
+                  f"model.species={{excited: {tmp_path / 'excited.xyz'}}}")
+    scatter.run({"shots": _shots(tmp_path), "structures": []}, out, cfg)
     ds = xr.open_zarr(out, consolidated=False)
     assert ds["traj_dS"].dims == ("frame", "q")
     assert ds["traj_positions"].dims == ("frame", "atom", "xyz")
@@ -189,28 +207,40 @@ def test_stage_without_trajectory_or_species(tmp_path):
 
     _inputs(tmp_path)
     out = tmp_path / "s.zarr"
-    scatter.run(tmp_path / "ground.xyz", [], {}, Q, out,
-                {"energy": 11.0, "anomalous": True, "excluded_volume": True, "damping": {"Ir-Ir": 0.05}})
+    cfg = _config(tmp_path, "model.photon_energy_kev=11.0", "model.anomalous=true", "model.excluded_volume=true",
+                  "model.damping_A=0.05")
+    scatter.run({"shots": _shots(tmp_path), "structures": []}, out, cfg)
     ds = xr.open_zarr(out, consolidated=False)
     assert ds["traj_dS"].shape == (0, Q.size) and ds["species_dS"].shape == (0, Q.size)
-    ref = D.debye(Q, ground_structure(), ELEMENTS, energy=11.0, anomalous=True,
-                  excluded_volume=ff.WATER_ELECTRON_DENSITY, damping={"Ir-Ir": 0.05})
+    ref = D.debye(Q, ground_structure(), ELEMENTS, photon_energy=11.0, anomalous=True,
+                  excluded_volume=ff.WATER_ELECTRON_DENSITY, damping=0.05)
     np.testing.assert_allclose(ds["ground_S"].values, ref, rtol=0, atol=1e-4 * np.abs(ref).max())
 
 
-@pytest.mark.parametrize("options, key", [
-    ({"bogus": 1}, "scatter.bogus"),
-    ({"dr": 0}, "scatter.dr"),
-    ({"anomalous": True}, "scatter.energy"),
-    ({"energy": "twelve"}, "scatter.energy"),
-    ({"num_workers": 0}, "scatter.num_workers"),
-    ({"excluded_volume": -1.0}, "scatter.excluded_volume"),
-    ({"damping": {"Ir-Ir": -0.1}}, "scatter.damping.Ir-Ir"),
+@pytest.mark.parametrize("override, key", [
+    ("model.bogus=1", "model.bogus"),
+    ("model.dr=0", "model.dr"),
+    ("model.anomalous=true", "model.photon_energy_kev"),
+    ("model.photon_energy_kev=twelve", "model.photon_energy_kev"),
+    ("compute.workers=0", "compute.workers"),
+    ("model.damping_A=-0.1", "model.damping_A"),
 ])
-def test_stage_option_errors(tmp_path, options, key):
+def test_option_errors_name_the_config_key(tmp_path, override, key):
+    # the config schema checks the stage's options before any stage runs
     with pytest.raises(ConfigError) as err:
-        scatter.run(tmp_path / "ground.xyz", [], {}, Q, tmp_path / "x.zarr", options)
+        _config(tmp_path, override)
     assert err.value.key == key
+
+
+def test_core_option_errors_reach_the_user_as_config_keys(tmp_path):
+    # a config that bypassed the schema: the core's own parameter is reported as the key a user sets
+    _inputs(tmp_path)
+    cfg = _config(tmp_path)
+    cfg["model"] = dict(cfg["model"], anomalous=True, photon_energy_kev=None)
+    with pytest.raises(ConfigError) as err:
+        scatter.run({"shots": _shots(tmp_path), "structures": []}, tmp_path / "x.zarr", cfg)
+    assert err.value.key == "model.photon_energy_kev"
+    assert set(scatter.CONFIG_KEYS.values()) <= {f"model.{k}" for k in cfg["model"]} | {"compute.workers"}
     assert not (tmp_path / "x.zarr").exists()
 
 
@@ -219,8 +249,9 @@ def test_stage_input_errors_leave_no_store(tmp_path):
     other = tmp_path / "other.xyz"
     write_trajectory(other, ["O", "H"], np.zeros((2, 2, 3)) + [[0, 0, 0], [0, 0, 1]], [0.0, 0.1])
     out = tmp_path / "x.zarr"
+    shots = _shots(tmp_path)
     with pytest.raises(InputError, match="same order"):
-        scatter.run(tmp_path / "ground.xyz", [other], {}, Q, out, {})
+        scatter.run({"shots": shots}, out, _config(tmp_path, f"model.trajectory=['{other}']"))
     with pytest.raises(InputError, match="no such file"):
-        scatter.run(tmp_path / "ground.xyz", [], {"gone": tmp_path / "gone.xyz"}, Q, out, {})
+        scatter.run({"shots": shots}, out, _config(tmp_path, f"model.species={{gone: {tmp_path / 'gone.xyz'}}}"))
     assert not out.exists()

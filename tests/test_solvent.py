@@ -123,7 +123,7 @@ def test_heating_curve_recovered_from_late_delays():
     rng = np.random.default_rng(11)
     delays, d, e = heating_map(rng)
     hc = solvent.estimate_heating_curve(d, e, delays, (250.0, 1500.0))
-    np.testing.assert_array_equal(hc.delays_used, [300.0, 500.0, 700.0, 1000.0])
+    np.testing.assert_array_equal(hc.delay_used, [300.0, 500.0, 700.0, 1000.0])
     truth = DSDT / np.abs(DSDT).max()
     # The normalization divides by the noisy max|h| (relative error ~ ERR/(A sqrt(4)) ~
     # 1 %), a common factor: compare shapes after a least-squares rescale, then demand
@@ -151,3 +151,28 @@ def test_heating_curve_warns_when_solute_remains():
     assert any("do not share one shape" in w for w in hc.warnings)
     with pytest.raises(DataError):
         solvent.estimate_heating_curve(d, e, delays, (2000.0, 3000.0))
+
+
+def test_solvent_basis_collects_the_configured_terms():
+    q = np.linspace(0.5, 4.0, 50)
+    reference = 100.0 * np.exp(-0.1 * q**2)
+    diffs = {"dT": np.sin(q), "drho": np.cos(q)}
+    b = solvent.solvent_basis(q, reference, differentials=diffs, terms=["dT", "drho"], energy_term=True)
+    assert b.names == ["dT", "drho", "normalization", "energy"] and not b.estimated
+    np.testing.assert_array_equal(b.curves[0], diffs["dT"])
+    np.testing.assert_array_equal(b.curves[2], reference)
+    # the energy term is -d S / d ln q of the reference: for S = 100 exp(-0.1 q^2),
+    # q dS/dq = -20 q^2 exp(-0.1 q^2) (derivative by hand); dS_dlnq is its numerical form
+    np.testing.assert_allclose(b.curves[3], solvent.dS_dlnq(q, reference))
+    np.testing.assert_allclose(b.curves[3][5:-5], -20 * q[5:-5] ** 2 * np.exp(-0.1 * q[5:-5] ** 2), rtol=2e-3)
+    # heating switched off and no normalization: no curves at all
+    none = solvent.solvent_basis(q, reference, differentials=diffs, heating=False, normalization=False)
+    assert none.names == [] and none.curves is None
+
+
+def test_solvent_basis_names_its_parameter_for_a_missing_term():
+    q = np.linspace(0.5, 4.0, 20)
+    with pytest.raises(ValueError) as err:
+        solvent.solvent_basis(q, np.ones(20), differentials={"dT": np.ones(20)}, terms=["dT", "drho"])
+    assert err.value.parameter == "terms"
+    assert "drho" in str(err.value)

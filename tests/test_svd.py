@@ -138,3 +138,15 @@ def test_noise_rows_with_unequal_errors_are_measured_in_their_own_units():
     res = msvd.count_components(D, noise, err=err, rng=np.random.default_rng(1), noise_err=noise_err)
     assert res.threshold < 30, res.threshold
     assert res.n == 1
+
+
+def test_noise_rows_inside_the_window_among_usable_bins():
+    delay = np.array([-2.0, -1.0, -0.5, 0.0, 1.0, 2.0])
+    usable = np.array([True, False, True, True, True, True])
+    rows, notes = msvd.noise_rows(delay, usable, (-3.0, -0.2))
+    np.testing.assert_array_equal(rows, [True, False, True, False, False, False])
+    assert notes == []
+    # one usable bin cannot give a spread: the caller is told, and noise comes from the errors
+    rows, notes = msvd.noise_rows(delay, usable, (-1.5, -0.8))
+    assert rows is None and "0 usable bins" in notes[0]
+    assert msvd.noise_rows(delay, usable, None) == (None, [])

@@ -155,15 +155,15 @@ def exp_gauss(t, k, t0, sigma):
     return _exp_gauss_real(x, k.astype(float), sigma)
 
 
-def damped_oscillation_gauss(t, tau, omega, t0, sigma, phase=0.0):
-    """Damped cosine exp(-x/tau) cos(omega x + phase) H(x) convolved with the IRF.
+def damped_oscillation_gauss(t, damping_time, omega, t0, sigma, phase=0.0):
+    """Damped cosine exp(-x/damping_time) cos(omega x + phase) H(x) convolved with the IRF.
 
     Parameters
     ----------
     t : array_like
         Delays, ps.
-    tau : float or array_like
-        Damping time, ps (> 0; ``np.inf`` for an undamped cosine).
+    damping_time : float or array_like
+        Damping time of the amplitude, ps (> 0; ``np.inf`` for an undamped cosine).
     omega : float or array_like
         Angular frequency, rad/ps (2 pi / period).
     t0 : float
@@ -176,12 +176,12 @@ def damped_oscillation_gauss(t, tau, omega, t0, sigma, phase=0.0):
     Returns
     -------
     ndarray
-        Broadcast shape of ``t``, ``tau`` and ``omega``, float, dimensionless.
+        Broadcast shape of ``t``, ``damping_time`` and ``omega``, float, dimensionless.
     """
-    tau = np.asarray(tau, dtype=float)
-    k = 1.0 / tau - 1j * np.asarray(omega, dtype=float)
+    damping_time = np.asarray(damping_time, dtype=float)
+    k = 1.0 / damping_time - 1j * np.asarray(omega, dtype=float)
     e = exp_gauss(t, k, t0, sigma)
-    # Re[exp(i phase) exp(-k x)] = exp(-x/tau) cos(omega x + phase).
+    # Re[exp(i phase) exp(-k x)] = exp(-x/damping_time) cos(omega x + phase).
     return np.real(np.exp(1j * phase) * e)
 
 

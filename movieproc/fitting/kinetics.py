@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from movieproc.errors import ConfigError
+from movieproc.errors import ParameterError
 from movieproc.fitting import irf
 
 __all__ = [
@@ -31,14 +31,14 @@ __all__ = [
     "parallel",
 ]
 
-#: Config key named in errors about rate matrices and rate values.
-RATES_KEY = "fit.kinetics.rates"
+#: Parameter named in errors about rate matrices and rate values (the caller maps it to its own input).
+RATES_KEY = "rates"
 
 
 def _rates(k):
     k = np.atleast_1d(np.asarray(k, dtype=float))
     if k.ndim != 1 or k.size == 0 or not np.all(np.isfinite(k)) or np.any(k < 0):
-        raise ConfigError(RATES_KEY, f"{np.asarray(k).tolist()!r}",
+        raise ParameterError(RATES_KEY, f"{np.asarray(k).tolist()!r}",
                           "a non-empty list of finite rates >= 0 (1/ps)")
     return k
 
@@ -60,26 +60,26 @@ def validate_rate_matrix(K, rtol=1e-10):
 
     Raises
     ------
-    ConfigError
-        Naming ``fit.kinetics.rates``: not square, not finite, a negative
+    ParameterError
+        Naming ``rates``: not square, not finite, a negative
         off-diagonal rate, or a column that does not sum to zero.
     """
     K = np.array(K, dtype=float)
     if K.ndim != 2 or K.shape[0] != K.shape[1] or K.shape[0] == 0:
-        raise ConfigError(RATES_KEY, f"a matrix of shape {K.shape}", "a square rate matrix (n, n)")
+        raise ParameterError(RATES_KEY, f"a matrix of shape {K.shape}", "a square rate matrix (n, n)")
     if not np.all(np.isfinite(K)):
-        raise ConfigError(RATES_KEY, "non-finite entries", "finite rates (1/ps)")
+        raise ParameterError(RATES_KEY, "non-finite entries", "finite rates (1/ps)")
     off = K - np.diag(np.diag(K))
     if np.any(off < 0):
         i, j = np.argwhere(off < 0)[0]
-        raise ConfigError(RATES_KEY, f"negative rate K[{i},{j}] = {K[i, j]:g} 1/ps",
+        raise ParameterError(RATES_KEY, f"negative rate K[{i},{j}] = {K[i, j]:g} 1/ps",
                           "off-diagonal rates >= 0 (K[i, j] is the rate of j -> i)")
     scale = max(np.abs(K).max(), np.finfo(float).tiny)
     colsum = K.sum(axis=0)
     bad = np.abs(colsum) > rtol * scale
     if np.any(bad):
         j = int(np.argmax(bad))
-        raise ConfigError(RATES_KEY, f"column {j} sums to {colsum[j]:g} 1/ps",
+        raise ParameterError(RATES_KEY, f"column {j} sums to {colsum[j]:g} 1/ps",
                           "columns summing to 0 (K[j, j] = -sum of rates out of species j)")
     return K
 
@@ -128,7 +128,7 @@ def parallel_rate_matrix(k):
 def _c0(c0, n):
     c0 = np.asarray(c0, dtype=float)
     if c0.shape != (n,) or not np.all(np.isfinite(c0)):
-        raise ConfigError("fit.kinetics.initial", f"initial populations of shape {c0.shape}",
+        raise ParameterError("c0", f"initial populations of shape {c0.shape}",
                           f"{n} finite values, one per species")
     return c0
 
@@ -168,7 +168,7 @@ def _eigen(K):
     lam, V = linalg.eig(K)
     cond = np.linalg.cond(V)
     if not np.isfinite(cond) or cond > 1e10:
-        raise ConfigError(RATES_KEY, f"a rate matrix with (nearly) repeated eigenvalues {np.round(lam, 12)}",
+        raise ParameterError(RATES_KEY, f"a rate matrix with (nearly) repeated eigenvalues {np.round(lam, 12)}",
                           "distinct decay rates (e.g. no two equal steps in a sequential scheme) "
                           "for the closed-form IRF convolution")
     return lam, V
@@ -198,8 +198,8 @@ def populations_irf(K, c0, t, t0, sigma):
 
     Raises
     ------
-    ConfigError
-        Naming ``fit.kinetics.rates`` for an invalid matrix or (nearly) repeated
+    ParameterError
+        Naming ``rates`` for an invalid matrix or (nearly) repeated
         eigenvalues (eigenvector matrix condition number > 1e10, where the
         closed form would lose more than ~1e-6 to rounding).
 
@@ -278,7 +278,7 @@ def parallel(k, t, c0=None, t0=0.0, sigma=None):
     m = K.shape[0] - 1
     init = np.full(m, 1.0 / m) if c0 is None else np.asarray(c0, dtype=float)
     if init.shape != (m,):
-        raise ConfigError("fit.kinetics.initial", f"{init.size} initial populations",
+        raise ParameterError("c0", f"{init.size} initial populations",
                           f"{m}, one per decaying species")
     full = np.append(init, 0.0)
     if sigma is None:

@@ -34,10 +34,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from movieproc.errors import ConfigError, InputError
+from movieproc.errors import InputError, ParameterError
 from movieproc.fitting import irf, kinetics
 
-__all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel"]
+__all__ = ["LinearDesign", "SpeciesModel", "TrajectoryModel", "species_with_signal"]
+
+
+#: Lower bound of lifetimes, periods and damping times, ps: keeps the rates 1 / time finite.
+MIN_TIME = 1e-6
 
 
 @dataclass
@@ -67,7 +71,8 @@ def _solvent(solvent, solvent_names, nq):
         return None, []
     G = np.atleast_2d(np.asarray(solvent, dtype=float))
     if G.ndim != 2 or (nq is not None and G.shape[1] != nq) or not np.all(np.isfinite(G)):
-        raise InputError("argument 'solvent'", f"shape {G.shape}", "finite solvent curves (J, n_q) on the data's q grid")
+        raise InputError("argument 'solvent'", f"shape {G.shape}",
+                         "finite solvent curves (J, n_q) on the data's q grid")
     names = [f"solvent_{j}" for j in range(G.shape[0])] if solvent_names is None else list(solvent_names)
     if len(names) != G.shape[0]:
         raise InputError("argument 'solvent_names'", f"{len(names)} names", f"{G.shape[0]}")
@@ -90,7 +95,8 @@ class _BinWidth:
         d = np.asarray(delay, dtype=float)
         sp = np.asarray(spread, dtype=float)
         if d.shape != sp.shape or d.ndim != 1 or not np.all(np.isfinite(d)):
-            raise InputError("argument 'delay_spread'", f"shapes {d.shape}, {sp.shape}", "(n_delay,) delays and spreads (ps)")
+            raise InputError("argument 'delay_spread'", f"shapes {d.shape}, {sp.shape}",
+                             "(n_delay,) delays and spreads (ps)")
         order = np.argsort(d)
         self.delay, self.spread = d[order], np.nan_to_num(sp[order], nan=0.0)
 
@@ -111,6 +117,41 @@ class _BinWidth:
                 out = np.empty((delay.size,) + part.shape[1:], dtype=part.dtype)
             out[rows] = part
         return out
+
+
+def _transitions(transitions, m):
+    """[from, to] species indices of the network's m steps, as an (m, 2) int array."""
+    tr = np.asarray(transitions if transitions is not None else [], dtype=float)
+    if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
+        raise ParameterError("transitions", f"{transitions!r}",
+                             f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
+    if np.any(tr[:, 0] == tr[:, 1]):
+        raise ParameterError("transitions", f"{transitions!r}", "transitions between different species")
+    return tr.astype(int)
+
+
+def _initial(scheme, initial, m, n_species):
+    """Populations right after excitation (None for the sequential scheme: all in A1)."""
+    if scheme == "network":
+        init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
+        if init.shape != (n_species,) or not np.all(np.isfinite(init)):
+            raise ParameterError("initial", f"{initial!r}", f"{n_species} finite initial populations")
+        return init
+    if scheme == "parallel":
+        init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
+        if init.shape != (m,) or not np.all(np.isfinite(init)):
+            raise ParameterError("initial", f"{initial!r}", f"{m} finite initial populations")
+        return np.append(init, 0.0)
+    return None
+
+
+def _curves(curves, n_species):
+    """Given species curves as a finite (n_species, n_q) float array."""
+    B = np.atleast_2d(np.asarray(curves, dtype=float))
+    if B.shape[0] != n_species or not np.all(np.isfinite(B)):
+        raise InputError("argument 'curves'", f"shape {B.shape}",
+                         f"finite curves ({n_species}, n_q), one per contributing species")
+    return B.copy()
 
 
 class SpeciesModel:
@@ -149,7 +190,7 @@ class SpeciesModel:
         instrument response itself rather than the response widened by binning.
     transitions : array_like of int, shape (m, 2), optional
         ``network`` scheme: [from, to] species indices of each transition, whose
-        rate is 1 / tau_i (i in the order given). The rate matrix is checked to
+        rate is 1 / lifetime_i (i in the order given). The rate matrix is checked to
         be a valid first-order network.
 
     Notes
@@ -157,12 +198,12 @@ class SpeciesModel:
     With free curves for all of A1..Am the span of the sequential populations is
     that of the m exponentials, so the model is unchanged when lifetimes are
     exchanged: the data then give the set of lifetimes, and which species owns which
-    needs given curves or a constraint (e.g. bounds that keep tau_1 < tau_2).
+    needs given curves or a constraint (e.g. bounds that keep lifetime_1 < lifetime_2).
 
     Attributes
     ----------
     param_names : tuple of str
-        ``t0`` (ps), ``sigma`` (ps, IRF standard deviation), ``tau_1``..``tau_m``
+        ``t0`` (ps), ``sigma`` (ps, IRF standard deviation), ``lifetime_1``..``lifetime_m``
         (lifetimes, ps), then ``osc_period``, ``osc_damping`` if enabled.
     default_bounds : dict
         name -> (lower, upper).
@@ -179,65 +220,37 @@ class SpeciesModel:
         self.width = _BinWidth(*(delay_spread or (None, None)))
         m = int(n_lifetimes)
         if m < 1:
-            raise ConfigError("fit.kinetics.n_lifetimes", str(n_lifetimes), "an integer >= 1")
+            raise ParameterError("n_lifetimes", str(n_lifetimes), "an integer >= 1")
         if scheme not in ("sequential", "parallel", "network"):
-            raise ConfigError("fit.kinetics", repr(scheme), "'sequential', 'parallel' or 'network'")
+            raise ParameterError("scheme", repr(scheme), "'sequential', 'parallel' or 'network'")
         self.n_lifetimes, self.scheme = m, scheme
-        n_species = m + 1
-        self.transitions = None
-        if scheme == "network":
-            tr = np.asarray(transitions if transitions is not None else [], dtype=float)
-            if tr.ndim != 2 or tr.shape != (m, 2) or not np.all(tr == np.round(tr)) or np.any(tr < 0):
-                raise ConfigError("fit.network", f"{transitions!r}",
-                                  f"{m} transitions [from, to] of species indices >= 0, one per lifetime")
-            tr = tr.astype(int)
-            if np.any(tr[:, 0] == tr[:, 1]):
-                raise ConfigError("fit.network", f"{transitions!r}", "transitions between different species")
-            self.transitions = tr
-            n_species = int(tr.max()) + 1
+        self.transitions = _transitions(transitions, m) if scheme == "network" else None
+        n_species = m + 1 if self.transitions is None else int(self.transitions.max()) + 1
         letters = ([f"A{i + 1}" for i in range(m)] + ["P"] if scheme != "network"
                    else [f"S{i}" for i in range(n_species)])
         self.species_names = letters
         self.species = list(range(n_species)) if species is None else [int(s) for s in species]
         if (not self.species or any(s < 0 or s >= n_species for s in self.species)
                 or len(set(self.species)) != len(self.species)):
-            raise ConfigError("fit.kinetics.species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
-        self.initial = None
-        if scheme == "network":
-            init = np.eye(n_species)[0] if initial is None else np.asarray(initial, dtype=float)
-            if init.shape != (n_species,) or not np.all(np.isfinite(init)):
-                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{n_species} finite initial populations")
-            self.initial = init
-        if scheme == "parallel":
-            init = np.full(m, 1.0 / m) if initial is None else np.asarray(initial, dtype=float)
-            if init.shape != (m,) or not np.all(np.isfinite(init)):
-                raise ConfigError("fit.kinetics.initial", f"{initial!r}", f"{m} finite initial populations")
-            self.initial = np.append(init, 0.0)
-        nq = None
-        if curves is not None:
-            B = np.atleast_2d(np.asarray(curves, dtype=float))
-            if B.shape[0] != len(self.species) or not np.all(np.isfinite(B)):
-                raise InputError("argument 'curves'", f"shape {B.shape}",
-                                 f"finite curves ({len(self.species)}, n_q), one per contributing species")
-            self.curves = B.copy()
-            nq = B.shape[1]
-        else:
-            self.curves = None
+            raise ParameterError("species", f"{species!r}", f"distinct indices in 0..{n_species - 1}")
+        self.initial = _initial(scheme, initial, m, n_species)
+        self.curves = None if curves is None else _curves(curves, len(self.species))
+        nq = None if self.curves is None else self.curves.shape[1]
         if oscillation and curves is not None:
-            raise ConfigError("fit.model.oscillation", "an oscillation with given species curves",
-                              "free species curves (no curve is known for the oscillation)")
+            raise ParameterError("oscillation", "an oscillation with given species curves",
+                                 "free species curves (no curve is known for the oscillation)")
         self.oscillation = bool(oscillation)
         self.solvent, self.solvent_names = _solvent(solvent, solvent_names, nq)
-        names = ["t0", "sigma"] + [f"tau_{i + 1}" for i in range(m)]
+        names = ["t0", "sigma"] + [f"lifetime_{i + 1}" for i in range(m)]
         if self.oscillation:
             names += ["osc_period", "osc_damping"]
         self.param_names = tuple(names)
         self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf)}
         for i in range(m):
-            self.default_bounds[f"tau_{i + 1}"] = (1e-6, np.inf)
+            self.default_bounds[f"lifetime_{i + 1}"] = (MIN_TIME, np.inf)
         if self.oscillation:
-            self.default_bounds["osc_period"] = (1e-6, np.inf)
-            self.default_bounds["osc_damping"] = (1e-6, np.inf)
+            self.default_bounds["osc_period"] = (MIN_TIME, np.inf)
+            self.default_bounds["osc_damping"] = (MIN_TIME, np.inf)
         self.map_names = ["alpha"] if self.curves is not None else []
         self.profile_names = [] if self.curves is not None else [letters[s] for s in self.species]
         if self.oscillation:
@@ -245,13 +258,13 @@ class SpeciesModel:
 
     def rate_matrix(self, params):
         """Rate matrix (1/ps) of the scheme for parameters ``params`` (dict)."""
-        k = np.array([1.0 / params[f"tau_{i + 1}"] for i in range(self.n_lifetimes)])
+        k = np.array([1.0 / params[f"lifetime_{i + 1}"] for i in range(self.n_lifetimes)])
         if self.scheme == "sequential":
             return kinetics.sequential_rate_matrix(k)
         if self.scheme == "network":
             n = len(self.species_names)
             K = np.zeros((n, n))
-            for (i, j), rate in zip(self.transitions, k):
+            for (i, j), rate in zip(self.transitions, k, strict=True):
                 K[j, i] += rate
                 K[i, i] -= rate
             kinetics.validate_rate_matrix(K)
@@ -299,6 +312,47 @@ class SpeciesModel:
                 delay, params["sigma"]) for ph in (0.0, -np.pi / 2)]
             profiles = np.column_stack([profiles] + osc)
         return LinearDesign(profiles=profiles, maps=maps, curves=self.solvent, populations=pop)
+
+
+def species_with_signal(n_lifetimes, scheme="sequential", transitions=None, product_signal=False):
+    """Species of a kinetic scheme that carry a solute signal by default.
+
+    Every species but the final product(s) (the recovered ground state), unless
+    ``product_signal``: then all of them.
+
+    Parameters
+    ----------
+    n_lifetimes : int
+        Number of decay steps (lifetimes).
+    scheme : {"sequential", "parallel", "network"}
+    transitions : sequence of (int, int), optional
+        ``network``: [from, to] of each step, one per lifetime.
+    product_signal : bool
+        The final product(s) have a solute signal of their own.
+
+    Returns
+    -------
+    species : list of int
+        Indices of the species with a signal.
+    n_species : int
+        Number of species of the scheme.
+
+    Raises
+    ------
+    ParameterError
+        ``transitions`` missing or not one per lifetime in the network scheme.
+    """
+    n = int(n_lifetimes)
+    if scheme == "network":
+        if not transitions or len(transitions) != n:
+            raise ParameterError("transitions", f"{transitions!r}", f"one [from, to] transition per lifetime ({n})")
+        n_species = max(max(t) for t in transitions) + 1
+        sources = {t[0] for t in transitions}
+        transient = [i for i in range(n_species) if i in sources]
+    else:
+        n_species = n + 1
+        transient = list(range(n))
+    return (list(range(n_species)) if product_signal else transient), n_species
 
 
 class TrajectoryModel:
@@ -351,7 +405,7 @@ class TrajectoryModel:
         self.frame_times, self.frame_curves = tf.copy(), Y.copy()
         self.solvent, self.solvent_names = _solvent(solvent, solvent_names, Y.shape[1])
         self.param_names = ("t0", "sigma", "lifetime")
-        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf), "lifetime": (1e-6, np.inf)}
+        self.default_bounds = {"t0": (-np.inf, np.inf), "sigma": (0.0, np.inf), "lifetime": (MIN_TIME, np.inf)}
         self.map_names = ["alpha"]
         self.profile_names = []
         self.species_names = ["excited"]

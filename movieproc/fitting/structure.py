@@ -125,63 +125,13 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
     -------
     FrameFit
     """
-    d = np.asarray(diff, dtype=float)
-    e = np.asarray(diff_err, dtype=float)
-    Y = np.asarray(frame_curves, dtype=float)
-    if d.ndim != 2 or e.shape != d.shape:
-        raise InputError("arguments 'diff' / 'diff_err'", f"shapes {d.shape}, {e.shape}", "equal (n_delay, n_q)")
-    nt, nq = d.shape
-    if Y.ndim != 2 or Y.shape[1] != nq or not np.all(np.isfinite(Y)):
-        raise InputError("argument 'frame_curves'", f"shape {Y.shape}", f"finite curves (F, {nq})")
-    F = Y.shape[0]
-    G = np.zeros((0, nq)) if solvent is None else np.atleast_2d(np.asarray(solvent, dtype=float))
-    if G.shape[1] != nq or not np.all(np.isfinite(G)):
-        raise InputError("argument 'solvent'", f"shape {G.shape}", f"finite curves (J, {nq})")
-    J = G.shape[0]
-    params = {} if params is None else {k: np.asarray(v, dtype=float) for k, v in params.items()}
-    for k, v in params.items():
-        if v.shape != (F,):
-            raise InputError(f"argument 'params[{k!r}]'", f"shape {v.shape}", f"({F},), one value per frame")
+    d, e, Y, G, params, fixed = _check(diff, diff_err, frame_curves, solvent, params, amplitude)
+    nt, F, J = d.shape[0], Y.shape[0], G.shape[0]
     valid = np.isfinite(d) & np.isfinite(e) & (e > 0)
-
-    chi2 = np.full((nt, F), np.nan)
-    amp = np.full((nt, F), np.nan)
-    amp_var = np.full((nt, F), np.nan)
-    fixed = None if amplitude is None else np.asarray(amplitude, dtype=float)
-    if fixed is not None and fixed.shape != (nt,):
-        raise InputError("argument 'amplitude'", f"shape {fixed.shape}", f"({nt},), one amplitude per delay")
     dof = valid.sum(1) - ((0 if fixed is not None else 1) + J)
-    sc_best = np.full((nt, J), np.nan) if J else None
-    warnings = []
-    for t in range(nt):
-        v = valid[t]
-        if dof[t] <= 0:
-            warnings.append(f"delay index {t}: {v.sum()} valid points for {1 + J} unknowns; not fitted")
-            continue
-        w = 1.0 / e[t, v]
-        y = d[t, v] * w
-        Yw = Y[:, v] * w                       # (F, n_valid)
-        if J:
-            Gw = G[:, v] * w
-            Qg, _ = np.linalg.qr(Gw.T)          # orthonormal basis of the weighted solvent curves
-            yp = y - Qg @ (Qg.T @ y)
-            Yp = Yw - (Yw @ Qg) @ Qg.T
-        else:
-            yp, Yp = y, Yw
-        ff = np.einsum("fq,fq->f", Yp, Yp)
-        fy = Yp @ yp
-        if fixed is not None:
-            a = np.full(F, max(float(fixed[t]), 0.0) if np.isfinite(fixed[t]) else 0.0)
-        else:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                a = np.where(ff > 0, fy / np.where(ff > 0, ff, 1.0), 0.0)
-            a = np.clip(a, 0.0, None)
-        # Direct sum of squares (not yy - fy^2/ff, which cancels to ~eps * yy).
-        res = yp[None, :] - a[:, None] * Yp
-        chi2[t] = np.einsum("fq,fq->f", res, res)
-        amp[t] = a
-        with np.errstate(divide="ignore"):
-            amp_var[t] = np.where(ff > 0, 1.0 / np.where(ff > 0, ff, 1.0), np.inf)
+    warnings = [f"delay index {t}: {valid[t].sum()} valid points for {1 + J} unknowns; not fitted"
+                for t in np.nonzero(dof <= 0)[0]]
+    chi2, amp, amp_var, chi2_zero = _frame_chi2(d, e, Y, G, valid, dof, fixed)
     fitted = np.isfinite(chi2).any(axis=1)
     best = np.zeros(nt, dtype=int)
     best[fitted] = np.nanargmin(chi2[fitted], axis=1)
@@ -190,48 +140,17 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
     with np.errstate(invalid="ignore", divide="ignore"):
         red = np.where(dof > 0, chi2_best / np.maximum(dof, 1), np.nan)
     thr = delta_chi2 * (red if scale_threshold else np.ones(nt))
-    accepted = (chi2 - chi2_best[:, None]) <= thr[:, None]
-    accepted &= fitted[:, None]
+    accepted = ((chi2 - chi2_best[:, None]) <= thr[:, None]) & fitted[:, None]
     a_best = np.where(fitted, amp[rows, best], np.nan)
-    a_err = np.sqrt(amp_var[rows, best] * np.maximum(1.0, np.nan_to_num(red, nan=1.0)))
+    scale = np.maximum(1.0, np.nan_to_num(red, nan=1.0))
+    a_err = np.sqrt(amp_var[rows, best] * scale)
     # Significant: the best frame lowers chi2 below that of no solute signal by at least
     # min_sigma^2 (e.g. 4: 2 sigma for one amplitude), scaled like the threshold. For a
     # free amplitude this is a >= min_sigma * sigma_a.
-    chi2_zero = np.full(nt, np.nan)
-    for t in np.nonzero(fitted)[0]:
-        v = valid[t]
-        w = 1.0 / e[t, v]
-        y = d[t, v] * w
-        if J:
-            Qg, _ = np.linalg.qr((G[:, v] * w).T)
-            y = y - Qg @ (Qg.T @ y)
-        chi2_zero[t] = y @ y
     with np.errstate(invalid="ignore"):
-        significant = fitted & ((chi2_zero - chi2_best) >= min_sigma**2 * np.maximum(1.0, np.nan_to_num(red, nan=1.0)))
-    value, lower, upper = {}, {}, {}
-    for k, v in params.items():
-        value[k] = np.where(fitted, v[best], np.nan)
-        # Each frame stands for the parameter values half-way to its neighbouring
-        # frames: the interval cannot be finer than the trajectory samples it.
-        mid = np.concatenate([[v[0]], (v[1:] + v[:-1]) / 2, [v[-1]]])
-        v_lo = np.minimum(v, np.minimum(mid[:-1], mid[1:]))
-        v_hi = np.maximum(v, np.maximum(mid[:-1], mid[1:]))
-        with np.errstate(all="ignore"):
-            lower[k] = np.where(fitted, np.min(np.where(accepted, v_lo[None, :], np.inf), axis=1), np.nan)
-            upper[k] = np.where(fitted, np.max(np.where(accepted, v_hi[None, :], -np.inf), axis=1), np.nan)
-    if J:
-        # Solvent coefficients of the best frame (unweighted basis), per delay.
-        for t in np.nonzero(fitted)[0]:
-            v = valid[t]
-            w = 1.0 / e[t, v]
-            A = np.vstack([Y[best[t]], G])[:, v].T * w[:, None]
-            coef = np.linalg.lstsq(A, d[t, v] * w, rcond=None)[0]
-            if fixed is not None:
-                coef = np.concatenate([[amp[t, best[t]]], np.linalg.lstsq(
-                    A[:, 1:], (d[t, v] - amp[t, best[t]] * Y[best[t], v]) * w, rcond=None)[0]]) if J else coef
-            elif amp[t, best[t]] == 0.0:
-                coef = np.concatenate([[0.0], np.linalg.lstsq(A[:, 1:], d[t, v] * w, rcond=None)[0]])
-            sc_best[t] = coef[1:]
+        significant = fitted & ((chi2_zero - chi2_best) >= min_sigma**2 * scale)
+    value, lower, upper = _intervals(params, best, fitted, accepted)
+    sc_best = _solvent_of_best(d, e, Y, G, valid, fitted, best, amp, fixed) if J else None
     at_end = fitted & (best == F - 1)
     at_start = fitted & (best == 0)
     if np.any(at_end):
@@ -244,3 +163,96 @@ def fit_frames(diff, diff_err, frame_curves, solvent=None, params=None, *, delta
                     red_chi2_best=red, dof=dof, threshold=thr, accepted=accepted, value=value, lower=lower,
                     upper=upper, solvent_coef=sc_best, at_end=at_end, at_start=at_start,
                     significant=significant, warnings=warnings)
+
+
+def _check(diff, diff_err, frame_curves, solvent, params, amplitude):
+    """The arguments of :func:`fit_frames` as checked float arrays."""
+    d = np.asarray(diff, dtype=float)
+    e = np.asarray(diff_err, dtype=float)
+    Y = np.asarray(frame_curves, dtype=float)
+    if d.ndim != 2 or e.shape != d.shape:
+        raise InputError("arguments 'diff' / 'diff_err'", f"shapes {d.shape}, {e.shape}", "equal (n_delay, n_q)")
+    nt, nq = d.shape
+    if Y.ndim != 2 or Y.shape[1] != nq or not np.all(np.isfinite(Y)):
+        raise InputError("argument 'frame_curves'", f"shape {Y.shape}", f"finite curves (F, {nq})")
+    G = np.zeros((0, nq)) if solvent is None else np.atleast_2d(np.asarray(solvent, dtype=float))
+    if G.shape[1] != nq or not np.all(np.isfinite(G)):
+        raise InputError("argument 'solvent'", f"shape {G.shape}", f"finite curves (J, {nq})")
+    params = {} if params is None else {k: np.asarray(v, dtype=float) for k, v in params.items()}
+    for k, v in params.items():
+        if v.shape != (Y.shape[0],):
+            raise InputError(f"argument 'params[{k!r}]'", f"shape {v.shape}", f"({Y.shape[0]},), one value per frame")
+    fixed = None if amplitude is None else np.asarray(amplitude, dtype=float)
+    if fixed is not None and fixed.shape != (nt,):
+        raise InputError("argument 'amplitude'", f"shape {fixed.shape}", f"({nt},), one amplitude per delay")
+    return d, e, Y, G, params, fixed
+
+
+def _weighted(d, e, G, valid, t):
+    """Weights of delay t's valid points, its weighted curve and the orthonormal basis of the weighted solvent."""
+    v = valid[t]
+    w = 1.0 / e[t, v]
+    Qg = np.linalg.qr((G[:, v] * w).T)[0] if G.shape[0] else None
+    return v, w, d[t, v] * w, Qg
+
+
+def _frame_chi2(d, e, Y, G, valid, dof, fixed):
+    """chi2 (n_delay, F) of every frame at every delay, its amplitude and variance, and chi2 of no solute signal.
+
+    The solvent curves are projected out of data and frames (their coefficients are free).
+    """
+    nt, F = d.shape[0], Y.shape[0]
+    chi2, amp, amp_var = (np.full((nt, F), np.nan) for _ in range(3))
+    chi2_zero = np.full(nt, np.nan)
+    for t in np.nonzero(dof > 0)[0]:
+        v, w, y, Qg = _weighted(d, e, G, valid, t)
+        Yw = Y[:, v] * w                       # (F, n_valid)
+        yp, Yp = (y, Yw) if Qg is None else (y - Qg @ (Qg.T @ y), Yw - (Yw @ Qg) @ Qg.T)
+        ff = np.einsum("fq,fq->f", Yp, Yp)
+        if fixed is not None:
+            a = np.full(F, max(float(fixed[t]), 0.0) if np.isfinite(fixed[t]) else 0.0)
+        else:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                a = np.where(ff > 0, (Yp @ yp) / np.where(ff > 0, ff, 1.0), 0.0)
+            a = np.clip(a, 0.0, None)
+        # Direct sum of squares (not yy - fy^2/ff, which cancels to ~eps * yy).
+        res = yp[None, :] - a[:, None] * Yp
+        chi2[t] = np.einsum("fq,fq->f", res, res)
+        amp[t] = a
+        with np.errstate(divide="ignore"):
+            amp_var[t] = np.where(ff > 0, 1.0 / np.where(ff > 0, ff, 1.0), np.inf)
+        chi2_zero[t] = yp @ yp
+    return chi2, amp, amp_var, chi2_zero
+
+
+def _intervals(params, best, fitted, accepted):
+    """Value of each geometric parameter at the best frame, and its range over the accepted frames."""
+    value, lower, upper = {}, {}, {}
+    for k, v in params.items():
+        value[k] = np.where(fitted, v[best], np.nan)
+        # Each frame stands for the parameter values half-way to its neighbouring
+        # frames: the interval cannot be finer than the trajectory samples it.
+        mid = np.concatenate([[v[0]], (v[1:] + v[:-1]) / 2, [v[-1]]])
+        v_lo = np.minimum(v, np.minimum(mid[:-1], mid[1:]))
+        v_hi = np.maximum(v, np.maximum(mid[:-1], mid[1:]))
+        with np.errstate(all="ignore"):
+            lower[k] = np.where(fitted, np.min(np.where(accepted, v_lo[None, :], np.inf), axis=1), np.nan)
+            upper[k] = np.where(fitted, np.max(np.where(accepted, v_hi[None, :], -np.inf), axis=1), np.nan)
+    return value, lower, upper
+
+
+def _solvent_of_best(d, e, Y, G, valid, fitted, best, amp, fixed):
+    """Solvent coefficients (n_delay, J) of the best frame (unweighted basis), per delay."""
+    sc_best = np.full((d.shape[0], G.shape[0]), np.nan)
+    for t in np.nonzero(fitted)[0]:
+        v, w, y, _ = _weighted(d, e, G, valid, t)
+        A = np.vstack([Y[best[t]], G])[:, v].T * w[:, None]
+        a = amp[t, best[t]]
+        if fixed is not None:
+            coef = np.linalg.lstsq(A[:, 1:], (d[t, v] - a * Y[best[t], v]) * w, rcond=None)[0]
+        elif a == 0.0:
+            coef = np.linalg.lstsq(A[:, 1:], y, rcond=None)[0]
+        else:
+            coef = np.linalg.lstsq(A, y, rcond=None)[0][1:]
+        sc_best[t] = coef
+    return sc_best

@@ -48,9 +48,34 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize
 
-from movieproc.errors import ConfigError, DataError, InputError, MovieprocError
+from movieproc.errors import DataError, InputError, MovieprocError, ParameterError
 
-__all__ = ["LinearSolution", "solve_linear", "FitResult", "fit", "BootstrapResult", "bootstrap"]
+__all__ = ["LinearSolution", "solve_linear", "FitResult", "Problem", "Optimum", "Errors", "validate",
+           "optimize_parameters", "parameter_errors", "flags", "fit", "BootstrapResult", "bootstrap",
+           "ParameterBootstrap", "refit_replicates", "refit_resamples"]
+
+#: A per-q K x K block of the linear solve above this condition number is solved by
+#: pseudo-inverse instead (no data or degenerate profiles at that q).
+MAX_BLOCK_CONDITION = 1e12
+#: Relative eigenvalue cut-off of the pseudo-inverses: well above double-precision rounding
+#: (~1e-16) of the scaled matrices, far below any direction the data determine.
+PINV_RCOND = 1e-12
+#: Relative cut-off of the Jacobi-scaled eigen-solve of the reduced (s, beta) system.
+SYSTEM_RCOND = 1e-11
+#: Correlations beyond this magnitude are reported: the two parameters trade off against each other.
+STRONG_CORRELATION = 0.95
+#: A free parameter within this fraction of its bound range (or of its value) counts as at the bound.
+AT_BOUND_RTOL = 1e-6
+#: The reduced chi2 is flagged beyond 1 + this many of its standard deviations sqrt(2 / dof).
+CHI2_SIGMAS = 5.0
+#: Fewer delays than this many per time-shaping parameter and profile: poorly constrained.
+DELAYS_PER_PARAMETER = 3
+#: Relative central-difference step of the Jacobian in theta (plus an absolute 1e-2 of it, for values near 0).
+JACOBIAN_STEP = 1e-5
+#: Smallest relative eigenvalue of a Jacobi-scaled J^T J still inverted (else: undetermined, infinite error).
+SINGULAR_RTOL = 1e-13
+#: A parameter takes part in an undetermined direction when its share of a null vector exceeds this.
+NULL_SHARE = 1e-8
 
 
 # ----------------------------------------------------------------------------- linear
@@ -80,8 +105,9 @@ class LinearSolution:
     n_linear: int
 
 
-def _sym_pinv_solve(M, r, rcond=1e-11):
+def _sym_pinv_solve(M, r, rcond=None):
     """Solve symmetric PSD M x = r (r may have several columns) in the pseudo-inverse sense."""
+    rcond = SYSTEM_RCOND if rcond is None else rcond
     d = np.sqrt(np.clip(np.diag(M), 0, None))
     d[d == 0] = 1.0
     Ms = M / d[:, None] / d[None, :]
@@ -159,11 +185,11 @@ def solve_linear(design, D, w):
         rhs = np.concatenate([Abz, bb[:, :, None]], axis=2)
         # Per-q K x K solves; pseudo-inverse where a block is singular (no data at that q).
         Y = np.zeros_like(rhs)
-        good = qvalid & (np.linalg.cond(Abb) < 1e12)
+        good = qvalid & (np.linalg.cond(Abb) < MAX_BLOCK_CONDITION)
         if np.any(good):
             Y[good] = np.linalg.solve(Abb[good], rhs[good])
         if np.any(~good):
-            Y[~good] = np.linalg.pinv(Abb[~good], rcond=1e-12) @ rhs[~good]
+            Y[~good] = np.linalg.pinv(Abb[~good], rcond=PINV_RCOND) @ rhs[~good]
         Yz, Yb = Y[:, :, :nz], Y[:, :, nz]
         if nz:
             M = Azz - np.einsum("qkz,qky->zy", Abz, Yz)
@@ -239,6 +265,9 @@ class FitResult:
         Number of data points used.
     n_params : int
         Free non-linear parameters plus independent linear amplitudes.
+    bootstrap : dict
+        Parameter name -> :class:`ParameterBootstrap`, filled by the caller from
+        :func:`refit_replicates` / :func:`refit_resamples` (empty without a bootstrap).
     """
 
     params: dict
@@ -270,9 +299,12 @@ class FitResult:
     warnings: list = field(default_factory=list)
     n_data: int = 0
     n_params: int = 0
+    bootstrap: dict = field(default_factory=dict)
 
 
 # ----------------------------------------------------------------------------- fitting
+
+
 
 def _check_data(diff, diff_err, delay):
     D = np.asarray(diff, dtype=float)
@@ -297,9 +329,286 @@ def _design_arrays_finite(design):
     return bad
 
 
+@dataclass
+class Problem:
+    """A checked fit problem: data as weights, parameters as names, bounds and start.
+
+    Attributes
+    ----------
+    model : SpeciesModel or TrajectoryModel
+    diff : ndarray, shape (n_delay, n_q)
+        The data as given (NaN kept), for the residual map.
+    D, w : ndarray, shape (n_delay, n_q)
+        Data (0 where left out) and weights 1/diff_err (0 where left out).
+    valid : ndarray of bool, shape (n_delay, n_q)
+    delay : ndarray, shape (n_delay,)
+        Delays, ps.
+    names, free : list of str
+        All non-linear parameters; the fitted ones.
+    start : dict
+        Initial value of every parameter.
+    low, high : ndarray, shape (n_free,)
+        Bounds of the free parameters.
+    n_data, n_params, n_delays, n_shaping : int
+        Data points; free parameters plus independent linear amplitudes; delays with
+        data; free parameters plus amplitude profiles (what the delays must shape).
+    """
+
+    model: object
+    diff: np.ndarray
+    D: np.ndarray
+    w: np.ndarray
+    valid: np.ndarray
+    delay: np.ndarray
+    names: list
+    free: list
+    start: dict
+    low: np.ndarray
+    high: np.ndarray
+    n_data: int = 0
+    n_params: int = 0
+    n_delays: int = 0
+    n_shaping: int = 0
+
+    def params_of(self, x):
+        """All parameters with the free ones set to ``x``."""
+        p = dict(self.start)
+        p.update(zip(self.free, map(float, x), strict=True))
+        return p
+
+    def design(self, params):
+        """The model's linear design at ``params``; a model that fails is a DataError."""
+        try:
+            return self.model.design(params, self.delay)
+        except MovieprocError as err:
+            raise DataError(f"the model cannot be evaluated at {params}: {err}") from err
+
+    def residual(self, x):
+        """Weighted projected residual at free parameters ``x``, shape (n_data,)."""
+        sol = solve_linear(self.design(self.params_of(x)), self.D, self.w)
+        return (self.w * (self.D - sol.model))[self.valid]
+
+
+@dataclass
+class Optimum:
+    """Where the optimizer stopped, with the linear solution and chi2 there."""
+
+    params: dict
+    design: object
+    solution: LinearSolution
+    converged: bool
+    message: str
+    nfev: int
+    x: np.ndarray
+    active: np.ndarray
+    jacobian: np.ndarray
+    chi2_delay: np.ndarray
+    chi2: float
+    dof: int
+    red_chi2: float
+
+
+@dataclass
+class Errors:
+    """Standard errors and correlations of a fit (scaled by the reduced chi2)."""
+
+    stderr: dict
+    correlation: np.ndarray
+    corr_names: list
+    amplitudes_err: dict
+    curves_err: np.ndarray | None
+    coef_err: np.ndarray | None
+
+
+def _check_parameters(model, p0, bounds, fixed):
+    """Check ``p0``, ``bounds`` and ``fixed`` against the model; return names, free, bounds and start."""
+    names = list(model.param_names)
+    unknown = set(p0) - set(names)
+    if unknown:
+        raise ParameterError(f"p0.{sorted(unknown)[0]}", "an unknown parameter", f"one of {names}")
+    missing = [n for n in names if n not in p0]
+    if missing:
+        raise ParameterError(f"p0.{missing[0]}", "no initial value", "a number (ps for times)")
+    bad_fixed = set(fixed) - set(names)
+    if bad_fixed:
+        raise ParameterError("fixed", f"unknown names {sorted(bad_fixed)}", f"names among {names}")
+    bnd = dict(model.default_bounds)
+    for k, v in (bounds or {}).items():
+        if k not in names:
+            raise ParameterError(f"bounds.{k}", "an unknown parameter", f"one of {names}")
+        bnd[k] = (float(v[0]), float(v[1]))
+    for n in names:
+        lo, hi = bnd.get(n, (-np.inf, np.inf))
+        v = float(p0[n])
+        if not lo < hi:
+            raise ParameterError(f"bounds.{n}", f"({lo}, {hi})", "lower < upper")
+        if not (lo <= v <= hi) or np.isnan(v):
+            raise ParameterError(f"p0.{n}", f"{v}", f"a value within the bounds [{lo}, {hi}]")
+    free = [n for n in names if n not in set(fixed)]
+    return names, free, bnd, {n: float(p0[n]) for n in names}
+
+
+def validate(model, diff, diff_err, delay, p0, bounds=None, fixed=()):
+    """Check a fit problem before any optimization; see :func:`fit` for the arguments.
+
+    Returns
+    -------
+    Problem
+
+    Raises
+    ------
+    ParameterError
+        Unknown, missing or out-of-bounds parameters (``p0.NAME``, ``bounds.NAME``, ``fixed``).
+    DataError
+        Too few delays or data points for the parameters, or a model that is not finite
+        at the initial guess.
+    """
+    D, w, valid, t = _check_data(diff, diff_err, delay)
+    names, free, bnd, start = _check_parameters(model, p0, bounds, fixed)
+    prob = Problem(model=model, diff=np.asarray(diff, float), D=D, w=w, valid=valid, delay=t, names=names,
+                   free=free, start=start, low=np.array([bnd[n][0] for n in free]),
+                   high=np.array([bnd[n][1] for n in free]))
+    design0 = prob.design(start)  # the kinetics are shaped by the delays only
+    K = 0 if design0.profiles is None else design0.profiles.shape[1]
+    ng = 0 if design0.maps is None else design0.maps.shape[0]
+    prob.n_delays = int(np.count_nonzero(valid.any(axis=1)))
+    prob.n_shaping = len(free) + K + ng
+    if prob.n_delays <= prob.n_shaping:
+        raise DataError(f"too few delays: {prob.n_delays} delays with data for {len(free)} non-linear parameters "
+                        f"and {K + ng} amplitude profiles; more than {prob.n_shaping} delays are needed")
+    prob.n_data = int(valid.sum())
+    bad = _design_arrays_finite(design0)
+    if bad:
+        raise DataError(f"the model is not finite at the initial guess {start}: {', '.join(bad)}")
+    r0 = prob.residual(np.array([start[n] for n in free]))
+    if not np.all(np.isfinite(r0)):
+        raise DataError(f"the weighted residual is not finite at the initial guess {start} "
+                        f"({np.count_nonzero(~np.isfinite(r0))} points)")
+    prob.n_params = len(free) + solve_linear(design0, D, w).n_linear
+    if prob.n_data <= prob.n_params:
+        raise DataError(f"too few data points: {prob.n_data} for {prob.n_params} parameters")
+    return prob
+
+
+def optimize_parameters(prob, *, max_nfev=None, jac="3-point", ftol=1e-10, xtol=1e-10, gtol=1e-10):
+    """Minimize the projected chi2 over the free parameters (trust-region reflective).
+
+    Returns
+    -------
+    Optimum
+    """
+    x0 = np.array([prob.start[n] for n in prob.free])
+    if prob.free:
+        res = optimize.least_squares(prob.residual, x0, bounds=(prob.low, prob.high), jac=jac, x_scale="jac",
+                                     method="trf", max_nfev=max_nfev, ftol=ftol, xtol=xtol, gtol=gtol)
+        x, converged, message, nfev, active, jproj = res.x, res.status > 0, res.message, res.nfev, \
+            res.active_mask, res.jac
+    else:
+        x, converged, message, nfev = x0, True, "no free parameters", 1
+        active, jproj = np.zeros(0, int), np.zeros((prob.n_data, 0))
+    params = prob.params_of(x)
+    des = prob.design(params)
+    sol = solve_linear(des, prob.D, prob.w)
+    rw = np.where(prob.valid, prob.w * (prob.D - sol.model), 0.0)
+    chi2_delay = (rw**2).sum(axis=1)
+    chi2 = float(chi2_delay.sum())
+    dof = prob.n_data - prob.n_params
+    return Optimum(params=params, design=des, solution=sol, converged=bool(converged), message=str(message),
+                   nfev=int(nfev), x=np.asarray(x, float), active=np.asarray(active), jacobian=jproj,
+                   chi2_delay=chi2_delay, chi2=chi2, dof=int(dof), red_chi2=float(chi2 / dof))
+
+
+def parameter_errors(prob, opt, linear_errors=True):
+    """Standard errors (scaled by the reduced chi2) and correlations at the optimum.
+
+    With ``linear_errors`` the full covariance of (theta, linear amplitudes) is used
+    (see the module notes); otherwise theta's errors come from the projected Jacobian.
+
+    Returns
+    -------
+    Errors
+    """
+    model, sol, red, free = prob.model, opt.solution, opt.red_chi2, prob.free
+    amplitudes_err = {n: np.nan for n in model.map_names}
+    curves_err = coef_err = None
+    if linear_errors:
+        cov_theta, var, cov_small = _full_covariance(model, opt.params, free, prob.low, prob.high, prob.delay,
+                                                     prob.D, prob.w, prob.valid, opt.design, sol)
+        cov_theta, var, cov_corr = cov_theta * red, var * red, cov_small * red
+        nt, nq = prob.D.shape
+        K = 0 if sol.curves is None else sol.curves.shape[0]
+        J = 0 if sol.curve_coef is None else sol.curve_coef.shape[1]
+        if K:
+            curves_err = np.sqrt(var[: K * nq]).reshape(nq, K).T
+        if J:
+            coef_err = np.sqrt(var[K * nq: K * nq + nt * J]).reshape(nt, J)
+        if sol.map_coef.size:
+            amplitudes_err = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist(), strict=True))
+        corr_names = list(free) + list(model.map_names)
+    else:
+        cov_theta = _inv_psd(opt.jacobian.T @ opt.jacobian) * red
+        cov_corr, corr_names = cov_theta, list(free)
+    p = len(free)
+    se = np.sqrt(np.clip(np.diag(cov_theta), 0, None)) if p else np.zeros(0)
+    se = np.where(np.isfinite(np.diag(cov_theta)), se, np.inf) if p else se
+    stderr = {n: (float(se[free.index(n)]) if n in free else np.nan) for n in prob.names}
+    with np.errstate(invalid="ignore", divide="ignore"):
+        dcorr = np.sqrt(np.diag(cov_corr))
+        corr = cov_corr / np.outer(dcorr, dcorr)
+    return Errors(stderr=stderr, correlation=corr, corr_names=corr_names, amplitudes_err=amplitudes_err,
+                  curves_err=curves_err, coef_err=coef_err)
+
+
+def _at_bound(prob, opt):
+    out = []
+    for i, n in enumerate(prob.free):
+        lo, hi, x = prob.low[i], prob.high[i], opt.x[i]
+        span = hi - lo
+        tol = AT_BOUND_RTOL * (span if np.isfinite(span) else max(abs(x), 1.0))
+        if opt.active[i] != 0 or x - lo <= tol or hi - x <= tol:
+            out.append(n)
+    return out
+
+
+def flags(prob, opt, errors):
+    """Everything that may make a fit mislead, in plain words.
+
+    Returns
+    -------
+    at_bound : list of str
+        Free parameters that ended on (or within ``AT_BOUND_RTOL`` of) a bound.
+    warnings : list of str
+    """
+    warnings = []
+    if not opt.converged:
+        warnings.append(f"fit not converged ({opt.message}); parameters and errors are not trustworthy")
+    at_bound = _at_bound(prob, opt)
+    if at_bound:
+        warnings.append(f"parameters at a bound: {at_bound}; their errors do not describe the uncertainty")
+    undetermined = [n for n in prob.free if not np.isfinite(errors.stderr[n])]
+    if undetermined:
+        warnings.append(f"the data do not determine {undetermined} (singular Jacobian)")
+    corr, names = errors.correlation, errors.corr_names
+    if corr.size:
+        for i, j in zip(*np.triu_indices(len(names), 1), strict=True):
+            if abs(corr[i, j]) > STRONG_CORRELATION:
+                warnings.append(f"parameters {names[i]} and {names[j]} are strongly correlated ({corr[i, j]:+.3f})")
+    dof, red = opt.dof, opt.red_chi2
+    if dof > 0 and red > 1 + CHI2_SIGMAS * np.sqrt(2.0 / dof):
+        warnings.append(f"reduced chi2 = {red:.3g} over {dof} dof: the model misses signal or the errors are "
+                        "underestimated (standard errors were scaled by sqrt(reduced chi2))")
+    if prob.n_delays < DELAYS_PER_PARAMETER * prob.n_shaping:
+        warnings.append(f"only {prob.n_delays} delays for {prob.n_shaping} time-shaping parameters and profiles: "
+                        "parameters may be poorly constrained")
+    return at_bound, warnings
+
+
 def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=None, linear_errors=True,
         jac="3-point", ftol=1e-10, xtol=1e-10, gtol=1e-10):
     """Fit a model to a (delay, q) difference map by variable projection.
+
+    Runs :func:`validate`, :func:`optimize_parameters`, :func:`parameter_errors` and
+    :func:`flags` in turn.
 
     Parameters
     ----------
@@ -334,173 +643,30 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
 
     Raises
     ------
-    ConfigError
-        Unknown, missing or out-of-bounds parameters (key ``fit.initial.NAME`` or
-        ``fit.bounds.NAME``).
+    ParameterError
+        Unknown, missing or out-of-bounds parameters, naming ``p0.NAME``,
+        ``bounds.NAME`` or ``fixed``.
     DataError
         Too few delays for the number of parameters (before fitting), or a model
-        that is not finite at the initial guess.
+        that is not finite at the initial guess (its cause the model's own error).
     """
-    D, w, valid, t = _check_data(diff, diff_err, delay)
-    names = list(model.param_names)
-    unknown = set(p0) - set(names)
-    if unknown:
-        raise ConfigError(f"fit.initial.{sorted(unknown)[0]}", "an unknown parameter", f"one of {names}")
-    missing = [n for n in names if n not in p0]
-    if missing:
-        raise ConfigError(f"fit.initial.{missing[0]}", "no initial value", "a number (ps for times)")
-    bad_fixed = set(fixed) - set(names)
-    if bad_fixed:
-        raise ConfigError("fit.fixed", f"unknown names {sorted(bad_fixed)}", f"names among {names}")
-    bnd = dict(model.default_bounds)
-    for k, v in (bounds or {}).items():
-        if k not in names:
-            raise ConfigError(f"fit.bounds.{k}", "an unknown parameter", f"one of {names}")
-        bnd[k] = (float(v[0]), float(v[1]))
-    free = [n for n in names if n not in set(fixed)]
-    for n in names:
-        lo, hi = bnd.get(n, (-np.inf, np.inf))
-        v = float(p0[n])
-        if not lo < hi:
-            raise ConfigError(f"fit.bounds.{n}", f"({lo}, {hi})", "lower < upper")
-        if not (lo <= v <= hi) or np.isnan(v):
-            raise ConfigError(f"fit.initial.{n}", f"{v}", f"a value within the bounds [{lo}, {hi}]")
-    base = {n: float(p0[n]) for n in names}
-
-    # Counting: the kinetics are shaped by the delays only.
-    design0 = None
-    try:
-        design0 = model.design(base, t)
-    except MovieprocError as err:
-        raise DataError(f"the model cannot be evaluated at the initial guess {base}: {err}") from err
-    K = 0 if design0.profiles is None else design0.profiles.shape[1]
-    ng = 0 if design0.maps is None else design0.maps.shape[0]
-    n_delays = int(np.count_nonzero(valid.any(axis=1)))
-    need = len(free) + K + ng
-    if n_delays <= need:
-        raise DataError(f"too few delays: {n_delays} delays with data for {len(free)} non-linear parameters "
-                        f"and {K + ng} amplitude profiles; more than {need} delays are needed")
-    n_data = int(valid.sum())
-
-    bad = _design_arrays_finite(design0)
-    if bad:
-        raise DataError(f"the model is not finite at the initial guess {base}: {', '.join(bad)}")
-
-    def params_of(x):
-        p = dict(base)
-        p.update(zip(free, map(float, x)))
-        return p
-
-    def residual(x):
-        p = params_of(x)
-        try:
-            des = model.design(p, t)
-        except MovieprocError as err:
-            raise DataError(f"the model cannot be evaluated at {p}: {err}") from err
-        sol = solve_linear(des, D, w)
-        return (w * (D - sol.model))[valid]
-
-    r0 = residual(np.array([base[n] for n in free]))
-    if not np.all(np.isfinite(r0)):
-        raise DataError(f"the weighted residual is not finite at the initial guess {base} "
-                        f"({np.count_nonzero(~np.isfinite(r0))} points)")
-    lin0 = solve_linear(design0, D, w)
-    n_params = len(free) + lin0.n_linear
-    if n_data <= n_params:
-        raise DataError(f"too few data points: {n_data} for {n_params} parameters")
-
-    x0 = np.array([base[n] for n in free])
-    lo = np.array([bnd[n][0] for n in free])
-    hi = np.array([bnd[n][1] for n in free])
-    if free:
-        res = optimize.least_squares(residual, x0, bounds=(lo, hi), jac=jac, x_scale="jac", method="trf",
-                                     max_nfev=max_nfev, ftol=ftol, xtol=xtol, gtol=gtol)
-        xhat, converged, message, nfev = res.x, res.status > 0, res.message, res.nfev
-        active = res.active_mask
-        Jproj = res.jac
-    else:
-        xhat, converged, message, nfev = x0, True, "no free parameters", 1
-        active = np.zeros(0, int)
-        Jproj = np.zeros((n_data, 0))
-    phat = params_of(xhat)
-    des = model.design(phat, t)
-    sol = solve_linear(des, D, w)
-    rw = np.where(valid, w * (D - sol.model), 0.0)
-    chi2_delay = (rw**2).sum(axis=1)
-    chi2 = float(chi2_delay.sum())
-    dof = n_data - n_params
-    red = chi2 / dof
-
-    warnings = []
-    if not converged:
-        warnings.append(f"fit not converged ({message}); parameters and errors are not trustworthy")
-    at_bound = []
-    for i, n in enumerate(free):
-        span = hi[i] - lo[i]
-        tol = 1e-6 * (span if np.isfinite(span) else max(abs(xhat[i]), 1.0))
-        if active[i] != 0 or xhat[i] - lo[i] <= tol or hi[i] - xhat[i] <= tol:
-            at_bound.append(n)
-    if at_bound:
-        warnings.append(f"parameters at a bound: {at_bound}; their errors do not describe the uncertainty")
-
-    # Covariances.
-    p = len(free)
-    amplitudes = dict(zip(model.map_names, sol.map_coef.tolist()))
-    amplitudes_err = {n: np.nan for n in model.map_names}
-    curves_err, coef_err = None, None
-    corr_names = list(free)
-    if linear_errors:
-        cov_theta, cov_lin_diag, cov_small = _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol)
-        cov_theta = cov_theta * red
-        nt, nq = D.shape
-        K = 0 if sol.curves is None else sol.curves.shape[0]
-        J = 0 if sol.curve_coef is None else sol.curve_coef.shape[1]
-        var = cov_lin_diag * red
-        if K:
-            curves_err = np.sqrt(var[: K * nq]).reshape(nq, K).T
-        if J:
-            coef_err = np.sqrt(var[K * nq: K * nq + nt * J]).reshape(nt, J)
-        ng = sol.map_coef.size
-        if ng:
-            amplitudes_err = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist()))
-        cov_corr = cov_small * red
-        corr_names = list(free) + list(model.map_names)
-    else:
-        cov_theta = _inv_psd(Jproj.T @ Jproj) * red
-        cov_corr = cov_theta
-    se = np.sqrt(np.clip(np.diag(cov_theta), 0, None)) if p else np.zeros(0)
-    se = np.where(np.isfinite(np.diag(cov_theta)), se, np.inf) if p else se
-    stderr = {n: (float(se[free.index(n)]) if n in free else np.nan) for n in names}
-    with np.errstate(invalid="ignore", divide="ignore"):
-        dcorr = np.sqrt(np.diag(cov_corr))
-        corr = cov_corr / np.outer(dcorr, dcorr)
-    undetermined = [n for n in free if not np.isfinite(stderr[n])]
-    if undetermined:
-        warnings.append(f"the data do not determine {undetermined} (singular Jacobian)")
-    if corr.size:
-        iu = np.triu_indices(len(corr_names), 1)
-        strong = [(corr_names[i], corr_names[j], corr[i, j]) for i, j in zip(*iu) if abs(corr[i, j]) > 0.95]
-        for a, b, c in strong:
-            warnings.append(f"parameters {a} and {b} are strongly correlated ({c:+.3f})")
-    if dof > 0 and red > 1 + 5 * np.sqrt(2.0 / dof):
-        warnings.append(f"reduced chi2 = {red:.3g} over {dof} dof: the model misses signal or the errors are "
-                        "underestimated (standard errors were scaled by sqrt(reduced chi2))")
-    if n_delays < 3 * need:
-        warnings.append(f"only {n_delays} delays for {need} time-shaping parameters and profiles: "
-                        "parameters may be poorly constrained")
-
-    residual_map = np.where(valid, np.asarray(diff, float) - sol.model, np.nan)
-    return FitResult(params=phat, stderr=stderr, free=free, correlation=corr, corr_names=corr_names,
-                     amplitudes=amplitudes, amplitudes_err=amplitudes_err,
-                     species_curves=sol.curves, species_curves_err=curves_err,
-                     profile_names=list(getattr(model, "profile_names", [])),
-                     solvent_coef=sol.curve_coef, solvent_coef_err=coef_err,
-                     solvent_names=list(getattr(model, "solvent_names", [])),
-                     chi2_delay=chi2_delay, chi2=chi2, dof=int(dof), red_chi2=float(red), model=sol.model,
-                     residual=residual_map, populations=des.populations,
-                     species_names=list(getattr(model, "species_names", [])), delay=t.copy(),
-                     converged=bool(converged), message=str(message), nfev=int(nfev), at_bound=at_bound,
-                     warnings=warnings, n_data=n_data, n_params=int(n_params))
+    prob = validate(model, diff, diff_err, delay, p0, bounds=bounds, fixed=fixed)
+    opt = optimize_parameters(prob, max_nfev=max_nfev, jac=jac, ftol=ftol, xtol=xtol, gtol=gtol)
+    errors = parameter_errors(prob, opt, linear_errors)
+    at_bound, warnings = flags(prob, opt, errors)
+    sol = opt.solution
+    return FitResult(params=opt.params, stderr=errors.stderr, free=list(prob.free), correlation=errors.correlation,
+                     corr_names=errors.corr_names,
+                     amplitudes=dict(zip(model.map_names, sol.map_coef.tolist(), strict=True)),
+                     amplitudes_err=errors.amplitudes_err, species_curves=sol.curves,
+                     species_curves_err=errors.curves_err, profile_names=list(getattr(model, "profile_names", [])),
+                     solvent_coef=sol.curve_coef, solvent_coef_err=errors.coef_err,
+                     solvent_names=list(getattr(model, "solvent_names", [])), chi2_delay=opt.chi2_delay,
+                     chi2=opt.chi2, dof=opt.dof, red_chi2=opt.red_chi2, model=sol.model,
+                     residual=np.where(prob.valid, prob.diff - sol.model, np.nan), populations=opt.design.populations,
+                     species_names=list(getattr(model, "species_names", [])), delay=prob.delay.copy(),
+                     converged=opt.converged, message=opt.message, nfev=opt.nfev, at_bound=at_bound,
+                     warnings=warnings, n_data=prob.n_data, n_params=int(prob.n_params))
 
 
 def _inv_psd(N):
@@ -514,40 +680,27 @@ def _inv_psd(N):
         return out
     Ns = N / np.outer(d, d)
     lam, V = np.linalg.eigh(Ns)
-    if lam.min() <= 1e-13 * lam.max():
+    if lam.min() <= SINGULAR_RTOL * lam.max():
         out = np.full(N.shape, np.nan)
         np.fill_diagonal(out, np.inf)
         return out
     return (V / lam) @ V.T / np.outer(d, d)
 
 
-def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
-    """Gauss-Newton covariance (unscaled) of (theta, linear amplitudes).
-
-    Returns the theta block (p, p), the diagonal of the linear block (n_L,) in the
-    order [B (q-major, K), s (t-major, J), beta], and the covariance of
-    (theta, beta) for the correlation matrix.
-    """
-    nt, nq = D.shape
-    C, X, G = des.profiles, des.maps, des.curves
-    K = 0 if C is None else C.shape[1]
-    J = 0 if G is None else G.shape[0]
-    ng = 0 if X is None else X.shape[0]
-    p = len(free)
-    nL = K * nq + nt * J + ng
-    # Jacobian columns of the weighted model, dense (n_data points kept only).
+def _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol):
+    """Jacobian (n_data, p) of the weighted model in theta at fixed linear amplitudes (central differences)."""
     vidx = np.nonzero(valid.ravel())[0]
-    cols = []
 
     def fixed_model(par):
         d = model.design(par, t)
         return _model_from(d.profiles, d.maps, d.curves, sol.curves, sol.map_coef, sol.curve_coef, D.shape)
 
+    cols = []
     for i, n in enumerate(free):
         x = phat[n]
-        h = 1e-5 * (abs(x) + 1e-2)
+        h = JACOBIAN_STEP * (abs(x) + 1e-2)
         up, dn = dict(phat), dict(phat)
-        if x - h < lo[i]:
+        if x - h < lo[i]:  # one-sided at a bound
             up[n] = x + h
             dm = (fixed_model(up) - sol.model) / h
         elif x + h > hi[i]:
@@ -557,17 +710,29 @@ def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
             up[n], dn[n] = x + h, x - h
             dm = (fixed_model(up) - fixed_model(dn)) / (2 * h)
         cols.append((w * dm).ravel()[vidx])
-    Jt = np.array(cols).T if p else np.zeros((vidx.size, 0))
-    # Normal matrix N = [Jt, JL]^T [Jt, JL], assembled block by block from the
-    # structure of the linear design (JL itself would be n_data x n_L, too large).
+    return np.array(cols).T if free else np.zeros((vidx.size, 0))
+
+
+def _normal_matrix(Jt, des, w, valid):
+    """Normal matrix N = [Jt, JL]^T [Jt, JL] of (theta, B, s, beta), assembled block by block.
+
+    JL itself (n_data x n_L) would be too large; its blocks follow from the structure of
+    the linear design.
+    """
+    nt, nq = w.shape
+    C, X, G = des.profiles, des.maps, des.curves
+    K = 0 if C is None else C.shape[1]
+    J = 0 if G is None else G.shape[0]
+    ng = 0 if X is None else X.shape[0]
+    p = Jt.shape[1]
+    nL = K * nq + nt * J + ng
     W2 = w * w
     N = np.zeros((p + nL, p + nL))
     N[:p, :p] = Jt.T @ Jt
     iB, iS, iG = p, p + K * nq, p + K * nq + nt * J
     Vfull = np.zeros((p, nt * nq))
-    Vfull[:, vidx] = Jt.T
-    Vfull = Vfull.reshape(p, nt, nq)
-    VW = Vfull * w  # theta column times the weight of the linear columns
+    Vfull[:, np.nonzero(valid.ravel())[0]] = Jt.T
+    VW = Vfull.reshape(p, nt, nq) * w  # theta column times the weight of the linear columns
     if K:
         N[:p, iB:iS] = np.einsum("ptq,tk->pqk", VW, C).reshape(p, nq * K)
         Abb = np.einsum("tq,tk,tl->qkl", W2, C, C)
@@ -587,32 +752,55 @@ def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
     if ng:
         N[:p, iG:] = np.einsum("ptq,gtq->pg", VW, X)
         N[iG:, iG:] = np.einsum("gtq,tq,htq->gh", X, W2, X)
-    N = np.triu(N) + np.triu(N, 1).T
+    return np.triu(N) + np.triu(N, 1).T
+
+
+def _constrained_covariance(N, p, G, K, nq):
+    """Covariance M^-1 N M^-1 of the estimate under the convention (curves orthogonal to the solvent curves).
+
+    M = N + L^T L, L the constraint rows sum_q G_j(q) B_k(q) = 0 (scaled like the B block);
+    directions the data do not determine get infinite variance.
+    """
     M = N.copy()
+    J = 0 if G is None else G.shape[0]
     if K and J:
-        # Constraint rows sum_q G_j(q) B_k(q) = 0, scaled like the B block.
         scale = np.sqrt(np.mean(np.diag(N)[p: p + K * nq]))
-        L = np.zeros((K * J, p + nL))
+        L = np.zeros((K * J, N.shape[0]))
         for k in range(K):
             for j in range(J):
                 L[k * J + j, p + np.arange(nq) * K + k] = G[j] / np.linalg.norm(G[j]) * scale
         M = M + L.T @ L
     d = np.sqrt(np.diag(M))
     d[d == 0] = 1.0
-    Ms = M / np.outer(d, d)
-    lam, V = np.linalg.eigh(Ms)
-    keep = lam > 1e-12 * lam.max()
+    lam, V = np.linalg.eigh(M / np.outer(d, d))
+    keep = lam > PINV_RCOND * lam.max()
     Minv = (V[:, keep] / lam[keep]) @ V[:, keep].T / np.outer(d, d)
     cov = Minv @ N @ Minv
     if not np.all(keep):
         # Directions the data do not determine: make them visible as infinite variance.
         null = V[:, ~keep] / d[:, None]
-        bad = np.any(np.abs(null) > 1e-8 * np.abs(null).max(), axis=1)
+        bad = np.any(np.abs(null) > NULL_SHARE * np.abs(null).max(), axis=1)
         cov[bad, bad] = np.inf
-    cov_theta = cov[:p, :p]
-    diag_lin = np.diag(cov)[p:]
+    return cov
+
+
+def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
+    """Gauss-Newton covariance (unscaled) of (theta, linear amplitudes).
+
+    Returns the theta block (p, p), the diagonal of the linear block (n_L,) in the
+    order [B (q-major, K), s (t-major, J), beta], and the covariance of
+    (theta, beta) for the correlation matrix.
+    """
+    nt, nq = D.shape
+    K = 0 if des.profiles is None else des.profiles.shape[1]
+    J = 0 if des.curves is None else des.curves.shape[0]
+    p = len(free)
+    Jt = _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol)
+    N = _normal_matrix(Jt, des, w, valid)
+    cov = _constrained_covariance(N, p, des.curves, K, nq)
+    nL = N.shape[0] - p
     sel = list(range(p)) + list(range(p + K * nq + nt * J, p + nL))
-    return cov_theta, diag_lin, cov[np.ix_(sel, sel)]
+    return cov[:p, :p], np.diag(cov)[p:], cov[np.ix_(sel, sel)]
 
 
 # ----------------------------------------------------------------------------- bootstrap
@@ -690,6 +878,108 @@ def bootstrap(fun, arrays, n, rng, *, ci=0.95):
         raise DataError(f"all {n} bootstrap replicates failed")
     S = np.array(out)
     a = (1 - ci) / 2
-    return BootstrapResult(samples=S, mean=S.mean(0), std=S.std(0, ddof=1) if len(S) > 1 else np.full(S.shape[1], np.nan),
+    std = S.std(0, ddof=1) if len(S) > 1 else np.full(S.shape[1], np.nan)
+    return BootstrapResult(samples=S, mean=S.mean(0), std=std,
                            low=np.quantile(S, a, axis=0), high=np.quantile(S, 1 - a, axis=0),
                            n_failed=failed, ci=float(ci))
+
+
+# ----------------------------------------------------------------------------- refits
+
+@dataclass
+class ParameterBootstrap:
+    """Bootstrap error of one fitted parameter.
+
+    Attributes
+    ----------
+    error : float
+        Standard deviation (ddof=1) of the parameter over the refitted replicates, in
+        the parameter's units.
+    replicates : int
+        Number of successful refits.
+    over : str
+        What was resampled: ``"shots"`` or ``"delays"``.
+    """
+
+    error: float
+    replicates: int
+    over: str
+
+
+def _refit(model, result, diff, diff_err, delay):
+    """Parameters, then amplitudes, of a refit started at ``result``'s parameters."""
+    r = fit(model, diff, diff_err, delay, result.params, linear_errors=False)
+    return [r.params[k] for k in model.param_names] + list(r.amplitudes.values())
+
+
+def _per_parameter(model, result, samples, over):
+    names = list(model.param_names) + list(result.amplitudes)
+    sd = np.std(np.asarray(samples, float), axis=0, ddof=1)
+    return {n: ParameterBootstrap(error=float(v), replicates=len(samples), over=over)
+            for n, v in zip(names, sd, strict=True)}
+
+
+def refit_replicates(model, result, replicates, diff_err, delay):
+    """Refit replicate maps (e.g. a bootstrap over shots); their spread is the parameters' error.
+
+    Parameters
+    ----------
+    model : SpeciesModel or TrajectoryModel
+        The model of ``result``.
+    result : FitResult
+        The fit to the full data; its parameters start every refit.
+    replicates : array_like, shape (n_rep, n_delay, n_q)
+        Replicate difference maps on the delays of ``result``.
+    diff_err, delay : array_like
+        Errors (n_delay, n_q) and delays (n_delay,), ps, of the full data.
+
+    Returns
+    -------
+    errors : dict
+        Parameter name -> :class:`ParameterBootstrap` (empty when fewer than 2 refits succeed).
+    n_failed : int
+        Replicates whose refit raised a MovieprocError.
+    """
+    samples = []
+    for rep in replicates:
+        try:
+            samples.append(_refit(model, result, rep, diff_err, delay))
+        except MovieprocError:
+            continue
+    n_failed = len(replicates) - len(samples)
+    if len(samples) < 2:
+        return {}, n_failed
+    return _per_parameter(model, result, samples, "shots"), n_failed
+
+
+def refit_resamples(model, result, diff, diff_err, delay, n, rng):
+    """Case-resampling bootstrap over delays, each resample refitted from ``result``'s parameters.
+
+    Parameters
+    ----------
+    model, result
+        As for :func:`refit_replicates`.
+    diff, diff_err : array_like, shape (n_delay, n_q)
+    delay : array_like, shape (n_delay,)
+        Delays, ps.
+    n : int
+        Number of resamples.
+    rng : numpy.random.Generator
+        Seeded source of the resampling.
+
+    Returns
+    -------
+    errors : dict
+        Parameter name -> :class:`ParameterBootstrap`.
+    draws : BootstrapResult
+        The resampled parameters (``n_failed`` counts failed refits).
+    """
+    def one(d, e, t):
+        order = np.argsort(t, kind="stable")
+        return _refit(model, result, d[order], e[order], t[order])
+
+    draws = bootstrap(one, (diff, diff_err, delay), n, rng)
+    names = list(model.param_names) + list(result.amplitudes)
+    errors = {k: ParameterBootstrap(error=float(v), replicates=int(len(draws.samples)), over="delays")
+              for k, v in zip(names, draws.std, strict=True)}
+    return errors, draws

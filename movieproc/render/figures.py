@@ -191,7 +191,7 @@ def structure_parameters(delay, values, lower, upper, units=None, title=""):
     n = max(1, len(values))
     fig, axes = plt.subplots(n, 1, figsize=(7, 2.6 * n + 0.6), sharex=True, layout="constrained")
     axes = np.atleast_1d(axes)
-    for ax, name in zip(axes, values):
+    for ax, name in zip(axes, values, strict=False):
         v, lo, hi = values[name], lower[name], upper[name]
         ok = np.isfinite(v)
         ax.errorbar(delay[ok], v[ok], yerr=[v[ok] - lo[ok], hi[ok] - v[ok]], fmt="o", ms=3, lw=0.8, capsize=2)
@@ -254,7 +254,7 @@ def realspace(r, delay, values, delays=None, title="", units=""):
         pick = np.unique([cand[int(np.argmin(np.abs(delay[cand] - d)))] for d in delays])
     fig, ax = plt.subplots(figsize=(6.5, 4.2), layout="constrained")
     colors = plt.cm.viridis(np.linspace(0, 0.9, len(pick)))
-    for c, i in zip(colors, pick):
+    for c, i in zip(colors, pick, strict=False):
         ax.plot(r, values[i], color=c, lw=1.2, label=f"{delay[i]:.3g} ps")
     ax.axhline(0, color="0.6", lw=0.6)
     ax.set_xlabel("r (Å)")

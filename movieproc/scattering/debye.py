@@ -75,16 +75,16 @@ def _check_q(q):
     return q
 
 
-def effective_form_factors(elements, q, energy=None, anomalous=False, excluded_volume=None):
+def effective_form_factors(q, elements, photon_energy=None, anomalous=False, excluded_volume=None):
     """Form factors of the distinct elements, optionally less their displaced solvent.
 
     Parameters
     ----------
-    elements : sequence of str
-        Element or ion symbol per atom.
     q : array_like, shape (nq,)
         Momentum transfer, 1/Å.
-    energy : float, optional
+    elements : sequence of str
+        Element or ion symbol per atom.
+    photon_energy : float, optional
         Photon energy, keV (for ``anomalous``).
     anomalous : bool
         Include f' + i f''.
@@ -100,10 +100,10 @@ def effective_form_factors(elements, q, energy=None, anomalous=False, excluded_v
     table : ndarray, shape (n_unique, nq)
         float64, or complex128 when ``anomalous``.
     """
-    unique, table = formfactors.form_factor_table(elements, q, energy=energy, anomalous=anomalous)
+    unique, table = formfactors.form_factor_table(q, elements, photon_energy=photon_energy, anomalous=anomalous)
     if excluded_volume is not None and excluded_volume is not False:
         rho0 = float(excluded_volume)
-        table = table - np.array([formfactors.dummy_form_factor(e, q, rho0) for e in unique])
+        table = table - np.array([formfactors.dummy_form_factor(q, e, rho0) for e in unique])
     return unique, table
 
 
@@ -168,7 +168,7 @@ def _sinc32(x):
 # Exact path
 # ---------------------------------------------------------------------------
 
-def debye(q, positions, elements, energy=None, anomalous=False, damping=None,
+def debye(q, positions, elements, photon_energy=None, anomalous=False, damping=None,
           excluded_volume=None, max_chunk=2**22):
     """Debye scattering by an explicit sum over all atom pairs.
 
@@ -180,7 +180,7 @@ def debye(q, positions, elements, energy=None, anomalous=False, damping=None,
         Atom positions, Å.
     elements : sequence of str, length N
         Element or ion symbol per atom.
-    energy : float, optional
+    photon_energy : float, optional
         Photon energy, keV (for ``anomalous``).
     anomalous : bool
         Use f0 + f' + i f''.
@@ -201,7 +201,7 @@ def debye(q, positions, elements, energy=None, anomalous=False, damping=None,
     q = _check_q(q)
     positions, elements = _check_structure(positions, elements)
     unique, table = effective_form_factors(
-        elements, q, energy=energy, anomalous=anomalous, excluded_volume=excluded_volume)
+        q, elements, photon_energy=photon_energy, anomalous=anomalous, excluded_volume=excluded_volume)
     unique, types, pairs, pair_row = _types(elements)
     n = len(elements)
     counts = np.bincount(types, minlength=len(unique))
@@ -232,7 +232,7 @@ def debye(q, positions, elements, energy=None, anomalous=False, damping=None,
             sig = per_atom_sigma[i, j]
             block *= np.exp(-0.5 * np.multiply.outer(sig**2, q2)).astype(np.float32)
         bounds = np.flatnonzero(np.r_[True, p[1:] != p[:-1], True])
-        for a, b in zip(bounds[:-1], bounds[1:]):
+        for a, b in zip(bounds[:-1], bounds[1:], strict=True):
             sums[p[a]] += block[a:b].sum(axis=0, dtype=np.float64)
     if factors is not None:
         sums *= factors
@@ -465,7 +465,7 @@ def debye_from_histograms(q, histograms, form_factors, damping=None, sinc=None):
     return self_term + 2.0 * (pair_sums * weights).sum(axis=-2)
 
 
-def debye_histogram(q, positions, elements, dr=0.01, r_max=None, energy=None, anomalous=False,
+def debye_histogram(q, positions, elements, dr=0.01, r_max=None, photon_energy=None, anomalous=False,
                     damping=None, excluded_volume=None):
     """Debye scattering through linear-share distance histograms.
 
@@ -481,7 +481,7 @@ def debye_histogram(q, positions, elements, dr=0.01, r_max=None, energy=None, an
         Histogram grid step, Å.
     r_max : float, optional
         Histogram range, Å (default from the bounding box).
-    energy, anomalous, damping, excluded_volume
+    photon_energy, anomalous, damping, excluded_volume
         As in :func:`debye` (``damping`` by element pair only).
 
     Returns
@@ -491,6 +491,6 @@ def debye_histogram(q, positions, elements, dr=0.01, r_max=None, energy=None, an
     """
     q = _check_q(q)
     hist = distance_histograms(positions, elements, dr=dr, r_max=r_max)
-    unique, table = effective_form_factors(list(hist.elements), q, energy=energy,
+    unique, table = effective_form_factors(q, list(hist.elements), photon_energy=photon_energy,
                                            anomalous=anomalous, excluded_volume=excluded_volume)
     return debye_from_histograms(q, hist, table, damping=damping)

@@ -34,7 +34,7 @@ from periodictable import cromermann
 from scipy import constants
 from scipy.special import spherical_jn
 
-from ..errors import InputError
+from ..errors import InputError, ParameterError
 
 __all__ = [
     "S_MAX",
@@ -138,7 +138,7 @@ def _check_q(q, what):
     return q
 
 
-def _f0(element, q):
+def _f0(q, element):
     a, b, c = _wk_coefficients(element)
     s2 = (q / (4.0 * np.pi)) ** 2
     if q.size and q.max() > 4.0 * np.pi * S_MAX:
@@ -148,14 +148,14 @@ def _f0(element, q):
     return c + np.exp(-np.multiply.outer(s2, b)) @ a
 
 
-def anomalous_terms(element, energy):
+def anomalous_terms(element, photon_energy):
     """Anomalous scattering terms f' and f'' at a photon energy.
 
     Parameters
     ----------
     element : str
         Element or ion symbol; ions take the neutral atom's values.
-    energy : float
+    photon_energy : float
         Photon energy, keV (0.01-30 keV, the range of the Henke tables).
 
     Returns
@@ -173,10 +173,9 @@ def anomalous_terms(element, energy):
     sym, _ = parse_element(element)
     el = periodictable.elements.symbol(sym)
     try:
-        e = float(energy)
+        e = float(photon_energy)
     except (TypeError, ValueError):
-        raise InputError(f"anomalous terms of '{element}'", f"energy {energy!r}",
-                         "a photon energy in keV") from None
+        raise ParameterError("photon_energy", repr(photon_energy), "a photon energy in keV") from None
     f1, f2 = el.xray.scattering_factors(energy=e)
     if f1 is None or not (np.isfinite(f1) and np.isfinite(f2)):
         raise InputError(f"anomalous terms of '{element}'",
@@ -185,19 +184,19 @@ def anomalous_terms(element, energy):
     return float(f1) - el.number, float(f2)
 
 
-def form_factor(element, q, energy=None, anomalous=False):
+def form_factor(q, element, photon_energy=None, anomalous=False):
     """Atomic X-ray form factor of one element or ion.
 
     Parameters
     ----------
-    element : str
-        Element or ion symbol: "Ir", "Cl", "O", "Fe2+", "O2-", "Cl-".
     q : array_like, shape (nq,)
         Momentum transfer, 1/Å, 0 <= q <= 75.4 (s <= 6 1/Å).
-    energy : float, optional
+    element : str
+        Element or ion symbol: "Ir", "Cl", "O", "Fe2+", "O2-", "Cl-".
+    photon_energy : float, optional
         Photon energy, keV; needed when ``anomalous`` is true.
     anomalous : bool
-        Add f' + i f'' at ``energy`` (q-independent).
+        Add f' + i f'' at ``photon_energy`` (q-independent).
 
     Returns
     -------
@@ -207,29 +206,30 @@ def form_factor(element, q, energy=None, anomalous=False):
     Raises
     ------
     InputError
-        Unknown symbol or ion, q out of range, missing or untabulated energy.
+        Unknown symbol or ion, q out of range, untabulated energy.
+    ParameterError
+        ``anomalous`` without a ``photon_energy`` (or one that is not a number).
     """
     q = _check_q(q, f"form factor of '{element}'")
-    f = _f0(element, q)
+    f = _f0(q, element)
     if anomalous:
-        if energy is None:
-            raise InputError(f"form factor of '{element}'", "anomalous=True without an energy",
-                             "a photon energy in keV")
-        f1, f2 = anomalous_terms(element, energy)
+        if photon_energy is None:
+            raise ParameterError("photon_energy", "None with anomalous=True", "a photon energy in keV")
+        f1, f2 = anomalous_terms(element, photon_energy)
         f = f + (f1 + 1j * f2)
     return f
 
 
-def form_factor_table(elements, q, energy=None, anomalous=False):
+def form_factor_table(q, elements, photon_energy=None, anomalous=False):
     """Form factors of the distinct elements in a list.
 
     Parameters
     ----------
-    elements : sequence of str, length N
-        Element or ion symbol of each atom.
     q : array_like, shape (nq,)
         Momentum transfer, 1/Å.
-    energy : float, optional
+    elements : sequence of str, length N
+        Element or ion symbol of each atom.
+    photon_energy : float, optional
         Photon energy, keV (for ``anomalous``).
     anomalous : bool
         Include f' + i f''.
@@ -239,7 +239,7 @@ def form_factor_table(elements, q, energy=None, anomalous=False):
     unique : list of str, length n_unique
         Distinct symbols in order of first appearance (as given).
     table : ndarray, shape (n_unique, nq)
-        ``table[k]`` is ``form_factor(unique[k], q, ...)``; float64, or complex128
+        ``table[k]`` is ``form_factor(q, unique[k], ...)``; float64, or complex128
         when ``anomalous``.
     """
     unique = list(dict.fromkeys(str(e) for e in elements))
@@ -247,7 +247,7 @@ def form_factor_table(elements, q, energy=None, anomalous=False):
     dtype = np.complex128 if anomalous else np.float64
     table = np.empty((len(unique), q.size), dtype=dtype)
     for k, el in enumerate(unique):
-        table[k] = form_factor(el, q, energy=energy, anomalous=anomalous)
+        table[k] = form_factor(q, el, photon_energy=photon_energy, anomalous=anomalous)
     return unique, table
 
 
@@ -259,7 +259,7 @@ _BOHR = constants.physical_constants["Bohr radius"][0] * 1e10  # Å
 #: Slater's effective principal quantum numbers n* for n = 1..7.
 _NSTAR = {1: 1.0, 2: 2.0, 3: 3.0, 4: 3.7, 5: 4.0, 6: 4.2, 7: 4.4}
 #: Subshells (n, l) in Madelung filling order.
-_MADELUNG = sorted(((n, l) for n in range(1, 8) for l in range(0, min(n, 4))),
+_MADELUNG = sorted(((n, ell) for n in range(1, 8) for ell in range(0, min(n, 4))),
                    key=lambda nl: (nl[0] + nl[1], nl[0]))
 _R = np.geomspace(1e-5, 40.0, 1600)  # radial grid, Å
 _W = np.empty_like(_R)  # trapezoid weights on the grid
@@ -269,37 +269,37 @@ _W[-1] = 0.5 * (_R[-1] - _R[-2])
 
 
 def _configuration(n_electrons):
-    """Ground-state occupation [(n, l, k)] by the Madelung rule."""
+    """Ground-state occupation [(n, ell, k)] by the Madelung rule."""
     out, left = [], n_electrons
-    for n, l in _MADELUNG:
+    for n, ell in _MADELUNG:
         if left <= 0:
             break
-        k = min(left, 2 * (2 * l + 1))
-        out.append((n, l, k))
+        k = min(left, 2 * (2 * ell + 1))
+        out.append((n, ell, k))
         left -= k
     return out
 
 
 def _slater_exponents(z, config):
     """Orbital exponents zeta (1/bohr) by Slater's screening rules."""
-    def group(n, l):
-        return (n, 0 if l < 2 else l)  # (ns,np) share a group; nd, nf are their own
+    def group(n, ell):
+        return (n, 0 if ell < 2 else ell)  # (ns,np) share a group; nd, nf are their own
 
     zetas = []
-    for n, l, _ in config:
-        g = group(n, l)
+    for n, ell, _ in config:
+        g = group(n, ell)
         shield = 0.0
         for n2, l2, k2 in config:
-            count = k2 - 1 if (n2, l2) == (n, l) else k2
+            count = k2 - 1 if (n2, l2) == (n, ell) else k2
             g2 = group(n2, l2)
             if g2 == g:
                 shield += (0.30 if n == 1 else 0.35) * count
-            elif l < 2:
+            elif ell < 2:
                 if n2 == n - 1:
                     shield += 0.85 * count
                 elif n2 < n - 1:
                     shield += 1.00 * count
-            elif n2 < n or (n2 == n and g2[1] < l):
+            elif n2 < n or (n2 == n and g2[1] < ell):
                 shield += 1.00 * count
         zetas.append((z - shield) / _NSTAR[n])
     return zetas
@@ -322,21 +322,21 @@ def _orbitals(z, n_electrons):
     config = _configuration(n_electrons)
     zetas = _slater_exponents(z, config)
     radial = []
-    for (n, l, _), zeta in zip(config, zetas):
+    for (n, _, _), zeta in zip(config, zetas, strict=True):
         ns = _NSTAR[n]
         # r^(n*-1) exp(-zeta r / a0), evaluated in log space to avoid overflow
         with np.errstate(divide="ignore"):
             rr = np.exp((ns - 1.0) * np.log(_R) - max(zeta, 1e-3) * _R / _BOHR)
         radial.append(rr)
-    for i, (n, l, _) in enumerate(config):  # Gram-Schmidt within each l, inner shells first
+    for i, (_, ell, _) in enumerate(config):  # Gram-Schmidt within each l, inner shells first
         for j in range(i):
-            if config[j][1] == l:
+            if config[j][1] == ell:
                 radial[i] = radial[i] - np.sum(_W * _R**2 * radial[i] * radial[j]) * radial[j]
         radial[i] = radial[i] / np.sqrt(np.sum(_W * _R**2 * radial[i] ** 2))
     return config, np.array(radial)
 
 
-def incoherent(element, q):
+def incoherent(q, element):
     """Incoherent (Compton) scattering function S(q) of an atom or ion.
 
     Waller-Hartree formula with Slater-rule orbitals (see the module notes for
@@ -344,10 +344,10 @@ def incoherent(element, q):
 
     Parameters
     ----------
-    element : str
-        Element or ion symbol.
     q : array_like, shape (nq,)
         Momentum transfer, 1/Å.
+    element : str
+        Element or ion symbol.
 
     Returns
     -------
@@ -361,8 +361,8 @@ def incoherent(element, q):
     if n_el < 1:
         return np.zeros_like(q)
     config, radial = _orbitals(z, n_el)
-    ls = np.array([l for _, l, _ in config])
-    occ = np.array([k / (2.0 * (2 * l + 1)) for _, l, k in config])  # per spin-orbital
+    ls = np.array([ell for _, ell, _ in config])
+    occ = np.array([k / (2.0 * (2 * ell + 1)) for _, ell, k in config])  # per spin-orbital
     qr = np.multiply.outer(q, _R)
     s = np.full(q.shape, float(n_el))
     norb = len(config)
@@ -425,7 +425,7 @@ def displaced_volume(element):
     return 4.0 / 3.0 * np.pi * radius**3
 
 
-def dummy_form_factor(element, q, solvent_density=WATER_ELECTRON_DENSITY):
+def dummy_form_factor(q, element, solvent_density=WATER_ELECTRON_DENSITY):
     """Form factor of the solvent displaced by an atom (a Gaussian dummy atom).
 
     g(q) = rho0 V exp(-V^(2/3) q^2 / (4 pi)) (Fraser, MacRae & Suzuki, J. Appl.
@@ -434,10 +434,10 @@ def dummy_form_factor(element, q, solvent_density=WATER_ELECTRON_DENSITY):
 
     Parameters
     ----------
-    element : str
-        Element or ion symbol.
     q : array_like, shape (nq,)
         Momentum transfer, 1/Å.
+    element : str
+        Element or ion symbol.
     solvent_density : float
         Bulk solvent electron density rho0, e/Å^3 (water: 0.334).
 

@@ -5,7 +5,7 @@ see :mod:`movieproc.scattering.debye`). Frames are processed in parallel with da
 (threads by default: the histogram kernel releases the GIL), one compiled kernel
 call per frame and one matrix product per task.
 
-Conventions: q in 1/Å, positions in Å, energy in keV, S and dS in e.u.^2 per molecule.
+Conventions: q in 1/Å, positions in Å, photon energy in keV, S and dS in e.u.^2 per molecule.
 
 Solvent terms
 -------------
@@ -22,7 +22,7 @@ from __future__ import annotations
 import dask
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, ParameterError
 from . import debye as _debye
 
 __all__ = [
@@ -34,12 +34,18 @@ __all__ = [
 ]
 
 
+#: Bytes of distance-histogram counts one dask task may hold (bounded memory per task).
+TASK_BYTES = 2**25
+#: Tasks per worker, so that workers stay busy when frames take unequal time.
+TASKS_PER_WORKER = 4
+
+
 class _Prepared:
     """q-grid-dependent quantities shared by every frame."""
 
-    def __init__(self, q, elements, r_max, dr, energy, anomalous, damping, excluded_volume):
+    def __init__(self, q, elements, r_max, dr, photon_energy, anomalous, damping, excluded_volume):
         unique, types, pairs, pair_row = _debye._types(list(elements))
-        _, table = _debye.effective_form_factors(unique, q, energy=energy, anomalous=anomalous,
+        _, table = _debye.effective_form_factors(q, unique, photon_energy=photon_energy, anomalous=anomalous,
                                                  excluded_volume=excluded_volume)
         _, weights = _debye._pair_weights(table)
         factors = _debye.pair_damping(damping, [(unique[a], unique[b]) for a, b in pairs], q)
@@ -78,8 +84,8 @@ def _check_frames(positions, elements, what):
     return positions, elements
 
 
-def trajectory_curves(q, positions, elements, dr=0.01, r_max=None, energy=None, anomalous=False,
-                      damping=None, excluded_volume=None, scheduler="threads", num_workers=None,
+def trajectory_curves(q, positions, elements, dr=0.01, r_max=None, photon_energy=None, anomalous=False,
+                      damping=None, excluded_volume=None, scheduler="threads", workers=None,
                       frames_per_task=None):
     """Debye S(q) of every frame of a trajectory.
 
@@ -95,7 +101,7 @@ def trajectory_curves(q, positions, elements, dr=0.01, r_max=None, energy=None, 
         Distance-histogram grid step, Å.
     r_max : float, optional
         Histogram range, Å; default the largest bounding-box diagonal over frames.
-    energy : float, optional
+    photon_energy : float, optional
         Photon energy, keV (for ``anomalous``).
     anomalous : bool
         Use f0 + f' + i f''.
@@ -106,7 +112,7 @@ def trajectory_curves(q, positions, elements, dr=0.01, r_max=None, energy=None, 
         Solvent electron density rho0 (e/Å^3) for the dummy-atom correction.
     scheduler : str
         dask scheduler: "threads" (default), "synchronous" or "processes".
-    num_workers : int, optional
+    workers : int, optional
         Number of dask workers (default: dask's choice).
     frames_per_task : int, optional
         Frames per dask task (default: bounded memory, several tasks per worker).
@@ -119,20 +125,24 @@ def trajectory_curves(q, positions, elements, dr=0.01, r_max=None, energy=None, 
     q = _debye._check_q(q)
     positions, elements = _check_frames(positions, elements, "trajectory")
     if not (np.isfinite(dr) and dr > 0):
-        raise InputError("dr", f"{dr!r}", "a grid step > 0 (Å)")
+        raise ParameterError("dr", f"{dr!r}", "a grid step > 0 (Å)")
+    if anomalous and photon_energy is None:
+        raise ParameterError("photon_energy", "None with anomalous=True", "a photon energy in keV")
+    if excluded_volume is not None and not (np.isfinite(excluded_volume) and excluded_volume >= 0):
+        raise ParameterError("excluded_volume", f"{excluded_volume!r}", "a solvent electron density >= 0 (e/Å^3)")
     if r_max is None:
         r_max = _debye.default_r_max(positions, dr)
-    prep = _Prepared(q, elements, r_max, dr, energy, anomalous, damping, excluded_volume)
+    prep = _Prepared(q, elements, r_max, dr, photon_energy, anomalous, damping, excluded_volume)
     n_frames = positions.shape[0]
     if frames_per_task is None:
         per_frame = prep.weights2.shape[0] * prep.k_size * 8
-        frames_per_task = max(1, min(int(2**25 // per_frame), -(-n_frames // (4 * (num_workers or 2)))))
+        frames_per_task = max(1, min(int(TASK_BYTES // per_frame), -(-n_frames // (TASKS_PER_WORKER * (workers or 2)))))
     starts = range(0, n_frames, int(frames_per_task))
     tasks = [dask.delayed(prep.curves)(np.ascontiguousarray(positions[s:s + frames_per_task]), s)
              for s in starts]
     kwargs = {"scheduler": scheduler}
-    if num_workers is not None:
-        kwargs["num_workers"] = int(num_workers)
+    if workers is not None:
+        kwargs["num_workers"] = int(workers)  # dask's own keyword
     parts = dask.compute(*tasks, **kwargs)
     return np.concatenate(parts, axis=0) if parts else np.empty((0, q.size))
 
@@ -153,8 +163,8 @@ def difference_curves(q, positions, elements, ground, ground_elements=None, **op
     ground_elements : sequence of str, length N0, optional
         Ground-state elements (default ``elements``).
     **options
-        Passed to :func:`trajectory_curves` (dr, r_max, energy, anomalous, damping,
-        excluded_volume, scheduler, num_workers, frames_per_task). Ground and frames
+        Passed to :func:`trajectory_curves` (dr, r_max, photon_energy, anomalous, damping,
+        excluded_volume, scheduler, workers, frames_per_task). Ground and frames
         go through the same histogram path, so its small errors largely cancel.
 
     Returns

@@ -31,15 +31,15 @@ def parse_formula(formula: str) -> dict:
     return counts
 
 
-def independent_atom_scattering(formula: str, q):
+def independent_atom_scattering(q, formula: str):
     """Coherent sum of f0^2 and incoherent scattering of one molecule's free atoms.
 
     Parameters
     ----------
-    formula : str
-        Chemical formula.
     q : array_like (nq,)
         1/Å.
+    formula : str
+        Chemical formula.
 
     Returns
     -------
@@ -51,8 +51,8 @@ def independent_atom_scattering(formula: str, q):
     coh = np.zeros(q.shape)
     inc = np.zeros(q.shape)
     for sym, n in parse_formula(formula).items():
-        coh += n * form_factor(sym, q) ** 2
-        inc += n * incoherent(sym, q)
+        coh += n * form_factor(q, sym) ** 2
+        inc += n * incoherent(q, sym)
     return coh, inc
 
 
@@ -75,8 +75,8 @@ def unit_cell_scattering(q, solute_S, solute_elements, solvent_formula, solvent_
     from ..scattering.formfactors import incoherent
 
     q = np.asarray(q, float)
-    coh, inc = independent_atom_scattering(solvent_formula, q)
-    solute_inc = sum(incoherent(e, q) for e in solute_elements)
+    coh, inc = independent_atom_scattering(q, solvent_formula)
+    solute_inc = sum(incoherent(q, e) for e in solute_elements)
     return np.asarray(solute_S, float) + solute_inc + solvent_per_solute * (coh + inc)
 
 

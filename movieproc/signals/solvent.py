@@ -20,9 +20,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from movieproc.errors import DataError, InputError
+from movieproc.errors import DataError, InputError, ParameterError
 
-__all__ = ["dS_dlnq", "SolventFit", "fit_solvent", "HeatingCurve", "estimate_heating_curve", "project_out"]
+__all__ = ["dS_dlnq", "SolventFit", "fit_solvent", "HeatingCurve", "estimate_heating_curve", "project_out",
+           "SolventBasis", "solvent_basis"]
 
 
 def dS_dlnq(q, curve):
@@ -206,7 +207,7 @@ class HeatingCurve:
         Standard error of ``curve`` (amplitudes held fixed).
     amplitudes, amplitude_err : ndarray, shape (n_used,)
         A(t) at the delays used, in data units (data = A h).
-    delays_used : ndarray, shape (n_used,)
+    delay_used : ndarray, shape (n_used,)
         Delays of the window, ps.
     chi2, dof, red_chi2 : float, int, float
         Fit of the late curves by the single shape (2-D weighted rank-1 fit).
@@ -219,7 +220,7 @@ class HeatingCurve:
     curve_err: np.ndarray
     amplitudes: np.ndarray
     amplitude_err: np.ndarray
-    delays_used: np.ndarray
+    delay_used: np.ndarray
     chi2: float
     dof: int
     red_chi2: float
@@ -227,7 +228,7 @@ class HeatingCurve:
     warnings: list = field(default_factory=list)
 
 
-def estimate_heating_curve(diff, diff_err, delays, late_window, *, max_iter=200, tol=1e-12):
+def estimate_heating_curve(diff, diff_err, delay, late_window, *, max_iter=200, tol=1e-12):
     """Estimate the heating differential's shape from late delays, where only heat remains.
 
     The curves at delays ``late_window[0] <= delay <= late_window[1]`` are fitted as
@@ -243,7 +244,7 @@ def estimate_heating_curve(diff, diff_err, delays, late_window, *, max_iter=200,
         Difference signal.
     diff_err : array_like, shape (n_delay, n_q)
         Standard errors.
-    delays : array_like, shape (n_delay,)
+    delay : array_like, shape (n_delay,)
         Delays, ps.
     late_window : (float, float)
         Inclusive delay range, ps, where only heat is assumed to remain.
@@ -262,14 +263,14 @@ def estimate_heating_curve(diff, diff_err, delays, late_window, *, max_iter=200,
         No delay in the window, or a q point with no valid data in the window.
     """
     d, e, valid, _ = _prepare(diff, diff_err)
-    delays = np.asarray(delays, dtype=float)
-    if delays.shape != (d.shape[0],):
-        raise InputError("argument 'delays'", f"shape {delays.shape}", f"({d.shape[0]},) like diff's delay axis")
+    delay = np.asarray(delay, dtype=float)
+    if delay.shape != (d.shape[0],):
+        raise InputError("argument 'delay'", f"shape {delay.shape}", f"({d.shape[0]},) like diff's delay axis")
     lo, hi = map(float, late_window)
-    sel = (delays >= lo) & (delays <= hi)
+    sel = (delay >= lo) & (delay <= hi)
     if not np.any(sel):
         raise DataError(f"no delay in the late window [{lo:g}, {hi:g}] ps (delays span "
-                        f"{delays.min():g} to {delays.max():g} ps)")
+                        f"{delay.min():g} to {delay.max():g} ps)")
     D, V = d[sel], valid[sel]
     W = np.where(V, 1.0 / np.where(V, e[sel], 1.0) ** 2, 0.0)
     D = np.where(V, D, 0.0)
@@ -311,7 +312,7 @@ def estimate_heating_curve(diff, diff_err, delays, late_window, *, max_iter=200,
                         "solute signal or density change may remain in the window")
     if np.any(a * np.sign(a.mean()) < -3 * a_err):
         warnings.append("heating amplitude changes sign inside the late window")
-    return HeatingCurve(curve=h, curve_err=h_err, amplitudes=a, amplitude_err=a_err, delays_used=delays[sel],
+    return HeatingCurve(curve=h, curve_err=h_err, amplitudes=a, amplitude_err=a_err, delay_used=delay[sel],
                         chi2=chi2, dof=dof, red_chi2=red, warnings=warnings)
 
 
@@ -344,3 +345,85 @@ def project_out(data, basis, err=None):
     d2, e2, valid, single = _prepare(arr, e)
     out = np.where(valid, out, np.nan)
     return out[0] if single else out
+
+
+@dataclass
+class SolventBasis:
+    """Curves fitted with a free coefficient per delay (solvent and nuisance terms).
+
+    Attributes
+    ----------
+    names : list of str
+        Term names: ``dT``/``drho`` (heating, density), ``normalization``, ``energy``.
+    curves : ndarray, shape (J, n_q), or None
+        The curves on the data's q grid, data units per coefficient unit; None without terms.
+    estimated : bool
+        The heating curve was estimated from late delays (its coefficient is in
+        arbitrary units, not K).
+    warnings : list of str
+    """
+
+    names: list
+    curves: np.ndarray | None
+    estimated: bool = False
+    warnings: list = field(default_factory=list)
+
+
+def solvent_basis(q, reference, *, differentials=None, terms=("dT",), heating=True, late=None, late_window=None,
+                  normalization=True, energy_term=False):
+    """Collect the curves fitted per delay: heating (and density), normalization, photon energy.
+
+    Parameters
+    ----------
+    q : array_like, shape (n_q,)
+        q grid, 1/Å.
+    reference : array_like, shape (n_q,)
+        Mean reference (pump-off) curve in the data's units.
+    differentials : dict, optional
+        Term name -> curve (n_q,) of the solvent differentials (e.g. ``{"dT": ..., "drho": ...}``).
+    terms : sequence of str
+        Terms of ``differentials`` to fit.
+    heating : bool
+        Include solvent terms at all.
+    late : (diff, diff_err, delay), optional
+        Data (n_delay, n_q), (n_delay, n_q), (n_delay,) ps from which the heating curve
+        is estimated when no ``differentials`` are given (see :func:`estimate_heating_curve`).
+    late_window : (float, float), optional
+        Delay range, ps, of that estimate; None: no estimate.
+    normalization : bool
+        Fit the reference curve per delay (a residual normalization error).
+    energy_term : bool
+        Fit -dS/d ln q of the reference per delay (a photon-energy mismatch between pump-on
+        and reference shots moves the curve in q: dS ~ -(dS/d ln q) dE/E).
+
+    Returns
+    -------
+    SolventBasis
+
+    Raises
+    ------
+    ParameterError
+        A term of ``terms`` missing from ``differentials``.
+    """
+    names, curves, warnings, estimated = [], [], [], False
+    if heating and differentials:
+        for term in terms:
+            if term not in differentials:
+                raise ParameterError("terms", f"'{term}'", f"a term of the differentials ({sorted(differentials)})")
+            names.append(term)
+            curves.append(np.asarray(differentials[term], float))
+    elif heating and late_window and late is not None:
+        heat = estimate_heating_curve(*late, late_window)
+        warnings += list(heat.warnings)
+        names.append("dT")
+        curves.append(heat.curve)
+        estimated = True
+    reference = np.asarray(reference, float)
+    if normalization:
+        names.append("normalization")
+        curves.append(reference)
+    if energy_term:
+        names.append("energy")
+        curves.append(dS_dlnq(q, reference))
+    return SolventBasis(names=names, curves=np.array(curves) if curves else None, estimated=estimated,
+                        warnings=warnings)

@@ -28,7 +28,10 @@ import numpy as np
 
 from movieproc.errors import DataError, InputError
 
-__all__ = ["svd", "reconstruct", "lag1_autocorrelation", "ComponentCount", "count_components"]
+__all__ = ["svd", "reconstruct", "lag1_autocorrelation", "ComponentCount", "count_components", "noise_rows"]
+
+#: Fewest noise-only rows whose spread gives a per-q noise level (a standard deviation needs two).
+MIN_NOISE_ROWS = 2
 
 
 def _as_map(D, name="diff"):
@@ -46,7 +49,8 @@ def _weights(weights, shape):
         return None
     w = np.broadcast_to(np.asarray(weights, dtype=float), shape)
     if not np.all(np.isfinite(w)) or np.any(w < 0):
-        raise InputError("argument 'weights'", "negative or non-finite weights", "finite weights >= 0 (e.g. 1/diff_err)")
+        raise InputError("argument 'weights'", "negative or non-finite weights",
+                         "finite weights >= 0 (e.g. 1/diff_err)")
     return w
 
 
@@ -286,3 +290,33 @@ def count_components(D, noise=None, *, err=None, weights=None, rng=None, n_noise
                         f"{autocorr_min}): not counted; fast changes, outliers or coarse sampling?")
     return ComponentCount(n=n, s=s, s_noise=s_noise, threshold=threshold, autocorr_u=ac_u, autocorr_v=ac_v,
                           significant=significant, smooth=smooth, noise_source=source, warnings=warnings)
+
+
+def noise_rows(delay, usable, window):
+    """Rows of a (delay, q) map that serve as the noise-only reference of :func:`count_components`.
+
+    Parameters
+    ----------
+    delay : array_like, shape (n_delay,)
+        Delays, ps.
+    usable : array_like of bool, shape (n_delay,)
+        Rows with data good enough to use.
+    window : (float, float) or None
+        Inclusive delay range, ps, holding no signal (e.g. before time zero).
+
+    Returns
+    -------
+    rows : ndarray of bool, shape (n_delay,), or None
+        The usable rows in ``window``; None without a window or with fewer than
+        :data:`MIN_NOISE_ROWS` of them (then noise is drawn from the errors).
+    warnings : list of str
+    """
+    if not window:
+        return None, []
+    lo, hi = window
+    delay = np.asarray(delay, float)
+    rows = np.asarray(usable, bool) & (delay >= lo) & (delay <= hi)
+    if rows.sum() < MIN_NOISE_ROWS:
+        return None, [f"the noise window [{lo}, {hi}] ps holds {int(rows.sum())} usable bins; "
+                      "noise drawn from the errors"]
+    return rows, []

@@ -18,27 +18,118 @@ when structures are configured) and writes ``analysis.zarr``, whose arrays the
   its lower and upper bound per delay.
 
 Bins under ``binning.min_shots`` are left out of the fits (their rows are NaN).
+
+Inputs: ``binned`` (store), ``models`` (store, only with ``model.ground``); config
+sections ``scaling``, ``solvent``, ``svd``, ``fit``, ``differences``. Errors of the
+numeric cores are reported under the config key a user sets (:data:`CONFIG_KEYS`).
 """
 
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from ..errors import ConfigError, DataError, InputError
 from ..fitting import structure, varpro
-from ..fitting.models import SpeciesModel, TrajectoryModel
+from ..fitting.models import SpeciesModel, TrajectoryModel, species_with_signal
 from ..io import store
 from ..scattering import geometry, realspace
 from ..signals import scaling, svd
-from ..signals.solvent import dS_dlnq, estimate_heating_curve, fit_solvent
+from ..signals.solvent import fit_solvent, solvent_basis
 from .common import Warnings, now
+from .keys import config_keys
 
 log = logging.getLogger("movieproc.analyze")
 
 SCALE_UNITS = "e.u. per solute molecule"
+
+#: Core parameter -> config key, for every core error a config can trigger (the stage's one table).
+CONFIG_KEYS = {
+    "p0.t0": "fit.time_zero_ps", "p0.sigma": "fit.irf_sigma_ps", "p0.lifetime": "fit.lifetimes_ps",
+    "p0.lifetime_*": "fit.lifetimes_ps", "p0.osc_period": "fit.oscillation_period_ps",
+    "p0.osc_damping": "fit.oscillation_damping_ps", "n_lifetimes": "fit.lifetimes_ps", "scheme": "fit.kinetics",
+    "transitions": "fit.network", "species": "fit.signal_species", "oscillation": "fit.oscillation",
+    "rates": "fit.lifetimes_ps", "terms": "solvent.terms",
+}
+#: In the network scheme the rate matrix is made from ``fit.network``.
+NETWORK_KEYS = {**CONFIG_KEYS, "rates": "fit.network"}
+
+#: Real-space view: distances 0-10 Å cover the intramolecular pairs of small solutes, in 0.05 Å steps
+#: (finer than the ~pi / q_max ~ 0.4 Å resolution of a typical q range).
+REALSPACE_MAX_R = 10.0
+REALSPACE_STEP = 0.05
+#: Gaussian damping exp(-kappa q^2), Å^2, of the sine transform: suppresses truncation ripples at q_max.
+REALSPACE_DAMPING = 0.03
+#: Nuisance terms (not a solvent response): a fit's solute model cannot take their shape.
+NUISANCE_TERMS = ("normalization", "energy")
+#: Fit parameters in ps (the rest are amplitudes).
+TIME_PARAMETERS = ("t0", "sigma", "lifetime", "osc_period", "osc_damping")
+
+
+@dataclass
+class Data:
+    """The binned differences as the analysis uses them.
+
+    Attributes
+    ----------
+    path : Path
+        The binned store.
+    q, delay : ndarray, shapes (n_q,), (n_delay,)
+        1/Å, ps.
+    diff, err : ndarray, shape (n_delay, n_q)
+        Difference and its standard error (``diff_err``), in ``units``.
+    low : ndarray of bool, shape (n_delay,)
+        Bins under the shot threshold.
+    off_mean : ndarray, shape (n_delay, n_q)
+        Mean reference curve per bin.
+    spread : ndarray, shape (n_delay,)
+        Standard deviation of the shots' delays per bin, ps.
+    boot : ndarray, shape (n_rep, n_delay, n_q), or None
+        Bootstrap replicates over shots.
+    units : str
+    models : zarr group or None
+        The store of the ``scatter`` stage.
+    """
+
+    path: Path
+    q: np.ndarray
+    delay: np.ndarray
+    diff: np.ndarray
+    err: np.ndarray
+    low: np.ndarray
+    off_mean: np.ndarray
+    spread: np.ndarray
+    boot: np.ndarray | None
+    units: str
+    models: Any
+
+
+def _one(value):
+    """One path from a named input that may be a list (empty when the input is absent)."""
+    if isinstance(value, (list, tuple)):
+        return Path(value[0]) if value else None
+    return Path(value) if value else None
+
+
+def read_data(inputs) -> Data:
+    """Read the binned store and the model store (if any) of the named inputs."""
+    path, models_path = Path(inputs["binned"]), _one(inputs.get("models"))
+    b = store.open_group(path, "binned store")
+    q = store.read(b, "q")
+    models = store.open_group(models_path, "model store") if models_path else None
+    if models is not None:
+        mq = store.read(models, "q")
+        if mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12):
+            raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {path}")
+    return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "diff").astype(float),
+                err=store.read(b, "diff_err").astype(float), low=store.read(b, "low_count"),
+                off_mean=store.read(b, "off_mean").astype(float), spread=store.read(b, "delay_spread"),
+                boot=store.read(b, "diff_boot").astype(float) if "diff_boot" in b else None,
+                units=b["diff"].attrs.get("units", ""), models=models)
 
 
 def read_differentials(path, q):
@@ -48,7 +139,8 @@ def read_differentials(path, q):
     """
     path = Path(path)
     if not path.exists():
-        raise InputError(path, "no such file", "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
+        raise InputError(path, "no such file",
+                         "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
     try:
         table = np.loadtxt(path, delimiter=",", comments="#", ndmin=2)
     except ValueError as exc:
@@ -64,175 +156,159 @@ def read_differentials(path, q):
     return out
 
 
-def _absolute_scale(config, q, models, reference):
+def run(inputs: dict, out: Path, config: dict) -> None:
+    """Analyze the binned differences; see the module docstring for what is written."""
+    warnings = Warnings("analyze", log)
+    data = read_data(inputs)
+    with config_keys(NETWORK_KEYS if config["fit"]["kinetics"] == "network" else CONFIG_KEYS):
+        arrays, result = analyze(data, config, warnings)
+    _write(out, data.q, data.delay, arrays, result, config, warnings)
+
+
+def analyze(data: Data, config: dict, warnings: Warnings):
+    """Scale, solvent terms, fit, SVD and structures; returns (arrays, result) for the store."""
+    factor = _absolute_scale(config, data)
+    data.diff, data.err = data.diff * factor, data.err * factor
+    data.boot = None if data.boot is None else data.boot * factor
+    usable = ~data.low & np.all(np.isfinite(data.diff), axis=1) & np.all(np.isfinite(data.err) & (data.err > 0), axis=1)
+    if usable.sum() == 0:
+        raise DataError(f"no delay bin of {data.path} has enough shots (binning.min_shots) for the analysis")
+    basis = _basis(config, data, usable, factor, warnings)
+    solute_units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else data.units
+    result = {"names": basis.names, "units": solute_units, "factor": factor,
+              "coef_units": "K (dT), g/cm3 (drho)" if config["scaling"]["mode"] == "solute"
+              and config["solvent"]["differentials"] else "arbitrary"}
+    fcfg = config["fit"]
+    use = _fit_rows(fcfg, data.delay, usable)
+    fit = _global_fit(fcfg, data, use, basis, warnings) if fcfg["mode"] != "none" else None
+    arrays, solute = _solute(fcfg, data, use, basis, fit, warnings)
+    result["fit"] = fit
+    result["svd_count"] = _svd(config["svd"], data, solute, usable, use, arrays, warnings)
+    if data.models is not None and "traj_dS" in data.models and fcfg["mode"] != "none":
+        # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
+        amplitude = None
+        if fit is not None and fcfg["mode"] == "trajectory":
+            amplitude = fit.amplitudes["alpha"] * fit.populations[:, 0]
+        structures, result["geometry_units"] = _structures(fcfg, data, use, basis.curves, warnings, amplitude)
+        arrays.update(structures)
+    return arrays, result
+
+
+def _absolute_scale(config, data):
+    """Factor from normalized units to e.u. per solute molecule (1 on the relative scale)."""
     sc = config["scaling"]
     if sc["mode"] != "solute":
         return 1.0
-    if models is None:
+    if data.models is None:
         raise ConfigError("scaling.mode", "'solute' without model.ground",
                           "a ground-state structure (model.ground) for the solute's scattering")
     for key in ("solvent_formula", "solvent_per_solute"):
         if sc[key] is None:
             raise ConfigError(f"scaling.{key}", "null", "a value, needed for scaling.mode 'solute'")
-    els = [str(e) for e in models["element"][...]]
-    unit = scaling.unit_cell_scattering(q, models["ground_S"][...], els, sc["solvent_formula"], sc["solvent_per_solute"])
+    ok_rows = ~data.low & np.all(np.isfinite(data.off_mean), axis=1)
+    reference = np.mean(data.off_mean[ok_rows], axis=0) if ok_rows.any() else None
+    els = [str(e) for e in data.models["element"][...]]
+    unit = scaling.unit_cell_scattering(data.q, data.models["ground_S"][...], els, sc["solvent_formula"],
+                                        sc["solvent_per_solute"])
     # the high-q window of the unit cell against the same window of the measured pump-off curve
-    factor = scaling.absolute_scale(q, unit, config["differences"]["norm_q_range"], reference)
+    factor = scaling.absolute_scale(data.q, unit, config["differences"]["norm_q_range"], reference)
     log.info("absolute scale: 1 normalized unit = %.6g e.u. per solute molecule", factor)
     return factor
 
 
-def run(binned_path, models_path, out, config: dict):
-    """Analyze the binned differences; see the module docstring for what is written."""
-    warnings = Warnings("analyze", log)
-    b = store.open_group(binned_path, "binned store")
-    q, delay = store.read(b, "q"), store.read(b, "delay")
-    diff = store.read(b, "diff").astype(float)
-    err = store.read(b, "diff_err").astype(float)
-    low = store.read(b, "low_count")
-    off_mean = store.read(b, "off_mean").astype(float)
-    models = store.open_group(models_path, "model store") if models_path else None
-    mq = store.read(models, "q") if models is not None else None
-    if models is not None and (mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12)):
-        raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {binned_path}")
-
-    ok_rows = ~low & np.all(np.isfinite(off_mean), axis=1)
-    factor = _absolute_scale(config, q, models, np.mean(off_mean[ok_rows], axis=0) if ok_rows.any() else None)
-    units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else b["diff"].attrs.get("units", "")
-    diff, err = diff * factor, err * factor
-    use = ~low & np.all(np.isfinite(diff), axis=1) & np.all(np.isfinite(err) & (err > 0), axis=1)
-    usable = use.copy()  # before any fit delay range: the SVD noise rows are chosen from these
-    if use.sum() == 0:
-        raise DataError(f"no delay bin of {binned_path} has enough shots (binning.min_shots) for the analysis")
-
-    # --- solvent and nuisance terms (curves with a free coefficient per delay)
+def _basis(config, data, use, factor, warnings):
+    """The solvent and nuisance curves fitted per delay, with what a user should know about them."""
     scfg = config["solvent"]
-    names, curves = [], []
-    if scfg["enabled"]:
-        if scfg["differentials"]:
-            diffs = read_differentials(scfg["differentials"], q)
-            for term in scfg["terms"]:
-                if term not in diffs:
-                    raise ConfigError("solvent.terms", f"'{term}'", f"a term present in {scfg['differentials']}")
-                names.append(term)
-                curves.append(diffs[term])
-        elif scfg["estimate_window_ps"]:
-            heat = estimate_heating_curve(diff[use], err[use], delay[use], scfg["estimate_window_ps"])
-            for w in heat.warnings:
-                warnings.add(w)
-            names.append("dT")
-            curves.append(heat.curve)
-            warnings.add("the heating curve was estimated from late delays (solvent.estimate_window_ps); "
-                         "its coefficient is in arbitrary units, not K")
-        else:
-            warnings.add("no solvent differentials (solvent.differentials) nor estimate window: no heating term fitted")
-    reference = np.nanmean(off_mean[use], axis=0) * factor
-    if config["differences"]["normalization"] != "none":
-        names.append("normalization")
-        curves.append(reference)
-    if scfg["energy_term"]:
-        # a photon-energy mismatch between pump-on and reference shots moves the curve in q:
-        # dS ~ -(dS/d ln q) dE/E, fitted per delay as a nuisance term
-        names.append("energy")
-        curves.append(dS_dlnq(q, reference))
-    basis = np.array(curves) if curves else None
-
-    result = {"names": names, "units": units, "factor": factor, "use": use,
-              "coef_units": "K (dT), g/cm3 (drho)" if config["scaling"]["mode"] == "solute" and scfg["differentials"]
-              else "arbitrary"}
-    if scfg["enabled"] and scfg["differentials"] and config["scaling"]["mode"] != "solute":
+    differentials = read_differentials(scfg["differentials"], data.q) if scfg["differentials"] else None
+    basis = solvent_basis(data.q, np.nanmean(data.off_mean[use], axis=0) * factor, differentials=differentials,
+                          terms=scfg["terms"], heating=scfg["enabled"],
+                          late=(data.diff[use], data.err[use], data.delay[use]),
+                          late_window=scfg["estimate_window_ps"],
+                          normalization=config["differences"]["normalization"] != "none",
+                          energy_term=scfg["energy_term"])
+    for w in basis.warnings:
+        warnings.add(w)
+    if basis.estimated:
+        warnings.add("the heating curve was estimated from late delays (solvent.estimate_window_ps); "
+                     "its coefficient is in arbitrary units, not K")
+    elif scfg["enabled"] and not differentials:
+        warnings.add("no solvent differentials (solvent.differentials) nor estimate window: no heating term fitted")
+    if scfg["enabled"] and differentials and config["scaling"]["mode"] != "solute":
         warnings.add("solvent coefficients are in arbitrary units: the differentials file is absolute (per K) but "
                      "the data are relative; set scaling.mode: solute (with the solvent composition) for dT in K")
-    arrays = {}
+    return basis
 
-    # --- fits
-    fcfg = config["fit"]
-    fit_res = None
-    if fcfg["mode"] != "none" and fcfg["delay_range_ps"]:
+
+def _fit_rows(fcfg, delay, usable):
+    """Rows of the fit: usable bins inside fit.delay_range_ps, at least fit.min_delays of them."""
+    use = usable.copy()
+    if fcfg["mode"] == "none":
+        return use
+    if fcfg["delay_range_ps"]:
         lo, hi = fcfg["delay_range_ps"]
         outside = use & ((delay < lo) | (delay > hi))
         if outside.any():
             log.info("fit.delay_range_ps [%g, %g]: %d bins left out of the analysis", lo, hi, int(outside.sum()))
-        use = use & ~outside
-    if fcfg["mode"] != "none" and use.sum() < fcfg["min_delays"]:
+        use &= ~outside
+    if use.sum() < fcfg["min_delays"]:
         raise DataError(f"{int(use.sum())} delay bins with enough shots for the fit; fit.min_delays asks for "
                         f"{fcfg['min_delays']} (check binning.min_shots and fit.delay_range_ps)")
-    if fcfg["mode"] != "none":
-        spread = (delay[use], store.read(b, "delay_spread")[use])
-        boot = store.read(b, "diff_boot").astype(float) * factor if "diff_boot" in b else None
-        fit_res = _global_fit(fcfg, models, diff[use], err[use], delay[use], basis, names, warnings, spread,
-                              None if boot is None else boot[:, use])
-    if fit_res is not None and fcfg["mode"] == "species" and fcfg["species_curves"] == "free" and \
-            any(n not in ("normalization", "energy") for n in names):
-        warnings.add("species fit with free curves: the split between the species curves and the per-delay solvent "
-                     "terms is a convention (curves carry no solvent-shaped part), so solvent_coef and solute are "
-                     "not determined by the data alone")
-    if fit_res is not None:
-        arrays["model"] = _rows(fit_res.model, use)
-        arrays["residual"] = _rows(fit_res.residual, use)
-        nvalid = np.maximum(np.isfinite(fit_res.residual).sum(axis=1) - (len(names) if names else 0), 1)
-        arrays["chi2"] = _rows(fit_res.chi2_delay / nvalid, use)
-        arrays["population"] = _rows(fit_res.populations, use)
-        coef, coef_err = fit_res.solvent_coef, fit_res.solvent_coef_err
-        removed = coef @ basis if basis is not None else 0.0
-        solute = diff[use] - removed
-        result["fit"] = fit_res
-    else:
-        if basis is not None:
-            sf = fit_solvent(diff[use], err[use], basis, names=names)
-            coef, coef_err, solute = sf.coef, sf.coef_err, sf.solute
-            for w in sf.warnings:
-                warnings.add(w)
-            if fcfg["mode"] == "none" and any(n not in ("normalization", "energy") for n in names):
-                warnings.add("no solute model in the fit (fit.mode none): solvent coefficients absorb any solute "
-                             "signal that resembles the solvent curves")
-        else:
-            coef = coef_err = None
-            solute = diff[use]
-    arrays["solute"] = _rows(solute, use)
-    # real-space view: which distances change (damped sine transform of q * solute)
-    r = np.arange(0.0, 10.0 + 1e-9, 0.05)
-    arrays["solute_realspace"] = _rows(realspace.sine_transform(q, solute, r, kappa=0.03), use)
-    arrays["r"] = r
-    if coef is not None:
-        arrays["solvent_coef"] = _rows(coef, use)
-        arrays["solvent_coef_err"] = _rows(coef_err, use)
+    return use
 
-    # --- SVD of the solute difference
-    ncfg = config["svd"]
-    noise = noise_err = None
-    if ncfg["noise_delays_ps"]:
-        lo, hi = ncfg["noise_delays_ps"]
-        rows = usable & (delay >= lo) & (delay <= hi)
-        if rows.sum() >= 2:
-            noise, noise_err = diff[rows], err[rows]
-        else:
-            warnings.add(f"svd.noise_delays_ps [{lo}, {hi}] holds {rows.sum()} usable bins; noise drawn from the errors")
-    count = svd.count_components(solute, noise, err=err[use], rng=np.random.default_rng(ncfg["seed"]),
+
+def _solute(fcfg, data, use, basis, fit, warnings):
+    """Arrays of the fit (if any) and the solute difference: data minus the per-delay terms."""
+    arrays = {}
+    diff, err, names, curves = data.diff[use], data.err[use], basis.names, basis.curves
+    solvent_like = any(n not in NUISANCE_TERMS for n in names)
+    if fit is not None:
+        if fcfg["mode"] == "species" and fcfg["species_curves"] == "free" and solvent_like:
+            warnings.add("species fit with free curves: the split between the species curves and the per-delay "
+                         "solvent terms is a convention (curves carry no solvent-shaped part), so solvent_coef and "
+                         "solute are not determined by the data alone")
+        nvalid = np.maximum(np.isfinite(fit.residual).sum(axis=1) - len(names), 1)
+        arrays.update(model=fit.model, residual=fit.residual, chi2=fit.chi2_delay / nvalid,
+                      population=fit.populations)
+        coef, coef_err = fit.solvent_coef, fit.solvent_coef_err
+        solute = diff - (coef @ curves if curves is not None else 0.0)
+    elif curves is not None:
+        sf = fit_solvent(diff, err, curves, names=names)
+        coef, coef_err, solute = sf.coef, sf.coef_err, sf.solute
+        for w in sf.warnings:
+            warnings.add(w)
+        if fcfg["mode"] == "none" and solvent_like:
+            warnings.add("no solute model in the fit (fit.mode none): solvent coefficients absorb any solute "
+                         "signal that resembles the solvent curves")
+    else:
+        coef = coef_err = None
+        solute = diff
+    arrays["solute"] = solute
+    # real-space view: which distances change (damped sine transform of q * solute)
+    r = np.arange(0.0, REALSPACE_MAX_R + 1e-9, REALSPACE_STEP)
+    arrays["solute_realspace"] = realspace.sine_transform(data.q, solute, r, kappa=REALSPACE_DAMPING)
+    if coef is not None:
+        arrays.update(solvent_coef=coef, solvent_coef_err=coef_err)
+    arrays = {k: _rows(v, use) for k, v in arrays.items()}
+    arrays["r"] = r
+    return arrays, solute
+
+
+def _svd(ncfg, data, solute, usable, use, arrays, warnings):
+    """SVD of the solute difference and its count of significant components."""
+    rows, notes = svd.noise_rows(data.delay, usable, ncfg["noise_delays_ps"])
+    for w in notes:
+        warnings.add(f"svd.noise_delays_ps: {w}")
+    noise, noise_err = (None, None) if rows is None else (data.diff[rows], data.err[rows])
+    count = svd.count_components(solute, noise, err=data.err[use], rng=np.random.default_rng(ncfg["seed"]),
                                  noise_err=noise_err)
     for w in count.warnings:
         warnings.add(w)
-    u, s, vt = svd.svd(solute, weights=1.0 / err[use])
+    u, s, vt = svd.svd(solute, weights=1.0 / data.err[use])
     k = min(ncfg["max_components"], s.size)
-    arrays["svd_values"] = s[:k]
-    arrays["svd_noise"] = count.s_noise[:k]
-    arrays["svd_u"] = _rows(u[:, :k], use)
-    arrays["svd_v"] = vt[:k]
-    result["svd_count"] = int(count.n)
+    arrays.update(svd_values=s[:k], svd_noise=count.s_noise[:k], svd_u=_rows(u[:, :k], use), svd_v=vt[:k])
     log.info("SVD: %d significant component(s) (values %s; noise %s)", count.n,
              np.array2string(s[:k], precision=3), np.array2string(count.s_noise[:k], precision=3))
-
-    # --- structure per delay
-    if models is not None and "traj_dS" in models and fcfg["mode"] != "none":
-        amplitude = None
-        if fit_res is not None and fcfg["mode"] == "trajectory":
-            # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
-            amplitude = fit_res.amplitudes["alpha"] * fit_res.populations[:, 0]
-        structures, result["geometry_units"] = _structures(fcfg, models, diff, err, use, basis, delay, warnings,
-                                                           amplitude)
-        arrays.update(structures)
-
-    _write(out, q, delay, arrays, result, config, warnings)
+    return int(count.n)
 
 
 def _rows(values, use):
@@ -243,74 +319,47 @@ def _rows(values, use):
     return full
 
 
-#: Keys the fitting cores name (their own parameter names) -> the config keys a user sets.
-_CORE_KEYS = {
-    "fit.initial.t0": "fit.time_zero_ps", "fit.initial.sigma": "fit.irf_sigma_ps",
-    "fit.initial.lifetime": "fit.lifetimes_ps", "fit.initial.osc_period": "fit.oscillation_period_ps",
-    "fit.initial.osc_damping": "fit.oscillation_damping_ps", "fit.kinetics.species": "fit.signal_species",
-    "fit.model.oscillation": "fit.oscillation", "fit.kinetics.n_lifetimes": "fit.lifetimes_ps",
-}
+def _trajectory_model(fcfg, models, basis, spread):
+    if models is None or "traj_dS" not in models:
+        raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")
+    times = store.read(models, "frame_time")
+    if not np.all(np.isfinite(times)):
+        raise InputError("model.trajectory", "frames without times", "time_ps= (or time_fs=) on every frame")
+    model = TrajectoryModel(times, store.read(models, "traj_dS"), solvent=basis.curves, solvent_names=basis.names,
+                            delay_spread=spread)
+    return model, {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"], "lifetime": fcfg["lifetimes_ps"][0]}
 
 
-def _global_fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, boot=None):
-    """The global fit, with errors of the fitting cores named by the config keys a user sets."""
-    try:
-        return _fit(fcfg, models, diff, err, delay, basis, names, warnings, spread, boot)
-    except (ConfigError, DataError) as err_:
-        # a model that cannot be evaluated at the starting values is a config problem too
-        exc = err_ if isinstance(err_, ConfigError) else err_.__cause__
-        if not isinstance(exc, ConfigError):
-            raise
-        key = _CORE_KEYS.get(exc.key, exc.key)
-        if key.startswith("fit.initial.tau_"):
-            key = "fit.lifetimes_ps"
-        if key == "fit.kinetics.rates":
-            key = "fit.network" if fcfg["kinetics"] == "network" else "fit.lifetimes_ps"
-        if key == exc.key and exc is err_:
-            raise
-        raise ConfigError(key, exc.found, exc.expected) from err_
+def _species_model(fcfg, models, basis, spread):
+    given = None
+    if fcfg["species_curves"] == "model":
+        if models is None or "species_dS" not in models or models["species_dS"].shape[0] == 0:
+            raise ConfigError("fit.species_curves", "'model' without model.species",
+                              "species structures in model.species, or fit.species_curves: free")
+        given = store.read(models, "species_dS")
+    n, scheme = len(fcfg["lifetimes_ps"]), fcfg["kinetics"]
+    transitions = fcfg["network"] if scheme == "network" else None
+    species, _ = species_with_signal(n, scheme, transitions, fcfg["product_signal"])
+    species = fcfg["signal_species"] or species
+    if given is not None and given.shape[0] != len(species):
+        raise ConfigError("model.species", f"{given.shape[0]} species structures",
+                          f"{len(species)}, one per species with a solute signal "
+                          f"(fit.signal_species, or the kinetic scheme's non-final species)")
+    model = SpeciesModel(n, scheme, curves=given, species=species, solvent=basis.curves, solvent_names=basis.names,
+                         delay_spread=spread, transitions=transitions, oscillation=fcfg["oscillation"])
+    p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"]}
+    p0.update({f"lifetime_{i + 1}": v for i, v in enumerate(fcfg["lifetimes_ps"])})
+    if fcfg["oscillation"]:
+        p0.update({"osc_period": fcfg["oscillation_period_ps"], "osc_damping": fcfg["oscillation_damping_ps"]})
+    return model, p0
 
 
-def _fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, boot=None):
-    if fcfg["mode"] == "trajectory":
-        if models is None or "traj_dS" not in models:
-            raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")
-        times = store.read(models, "frame_time")
-        if not np.all(np.isfinite(times)):
-            raise InputError("model.trajectory", "frames without times", "time_ps= (or time_fs=) on every frame")
-        model = TrajectoryModel(times, store.read(models, "traj_dS"), solvent=basis, solvent_names=names,
-                                delay_spread=spread)
-        p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"], "lifetime": fcfg["lifetimes_ps"][0]}
-    else:
-        given = None
-        if fcfg["species_curves"] == "model":
-            if models is None or "species_dS" not in models or models["species_dS"].shape[0] == 0:
-                raise ConfigError("fit.species_curves", "'model' without model.species",
-                                  "species structures in model.species, or fit.species_curves: free")
-            given = store.read(models, "species_dS")
-        n = len(fcfg["lifetimes_ps"])
-        scheme = fcfg["kinetics"]
-        transitions = fcfg["network"] if scheme == "network" else None
-        if scheme == "network":
-            if not transitions or len(transitions) != n:
-                raise ConfigError("fit.network", f"{transitions!r}",
-                                  f"one [from, to] transition per lifetime in fit.lifetimes_ps ({n})")
-            sinks = sorted(set(range(max(max(t) for t in transitions) + 1)) - {t[0] for t in transitions})
-            transient = [i for i in range(max(max(t) for t in transitions) + 1) if i not in sinks]
-            species = fcfg["signal_species"] or (None if fcfg["product_signal"] else transient)
-        else:
-            species = fcfg["signal_species"] or (None if fcfg["product_signal"] else list(range(n)))
-        n_all = (max(max(t) for t in transitions) + 1) if scheme == "network" else n + 1
-        if given is not None and given.shape[0] != len(species or range(n_all)):
-            raise ConfigError("model.species", f"{given.shape[0]} species structures",
-                              f"{len(species or range(n_all))}, one per species with a solute signal "
-                              f"(fit.signal_species, or the kinetic scheme's non-final species)")
-        model = SpeciesModel(n, scheme, curves=given, species=species, solvent=basis, solvent_names=names,
-                             delay_spread=spread, transitions=transitions, oscillation=fcfg["oscillation"])
-        p0 = {"t0": fcfg["time_zero_ps"], "sigma": fcfg["irf_sigma_ps"]}
-        p0.update({f"tau_{i + 1}": v for i, v in enumerate(fcfg["lifetimes_ps"])})
-        if fcfg["oscillation"]:
-            p0.update({"osc_period": fcfg["oscillation_period_ps"], "osc_damping": fcfg["oscillation_damping_ps"]})
+def _global_fit(fcfg, data, use, basis, warnings):
+    """The global fit of the used rows, its flags as warnings, and its bootstrap errors."""
+    spread = (data.delay[use], data.spread[use])
+    make = _trajectory_model if fcfg["mode"] == "trajectory" else _species_model
+    model, p0 = make(fcfg, data.models, basis, spread)
+    diff, err, delay = data.diff[use], data.err[use], data.delay[use]
     res = varpro.fit(model, diff, err, delay, p0)
     for w in res.warnings:
         warnings.add(f"fit: {w}")
@@ -321,70 +370,56 @@ def _fit(fcfg, models, diff, err, delay, basis, names, warnings, spread=None, bo
     text = ", ".join(f"{k} = {v:.4g} ± {res.stderr.get(k, np.nan):.2g}" for k, v in res.params.items())
     text += "".join(f", {k} = {v:.4g} ± {res.amplitudes_err.get(k, np.nan):.2g}" for k, v in res.amplitudes.items())
     log.info("%s fit: %s; reduced chi2 %.3f", fcfg["mode"], text, res.red_chi2)
-    names_all = list(model.param_names) + list(res.amplitudes)
-    res.bootstrap = {}
-    if boot is not None:
-        # refit every bootstrap replicate over shots; its spread is the parameters' error
-        samples = []
-        for rep in boot:
-            try:
-                r = varpro.fit(model, rep, err, delay, res.params, linear_errors=False)
-            except (DataError, ConfigError):
-                continue
-            samples.append([r.params[k] for k in model.param_names] + list(r.amplitudes.values()))
-        if len(samples) >= 2:
-            sd = np.std(np.array(samples), axis=0, ddof=1)
-            res.bootstrap = {n: {"error": float(v), "replicates": len(samples), "over": "shots"}
-                             for n, v in zip(names_all, sd)}
-            log.info("bootstrap over shots (%d replicates): %s", len(samples),
-                     ", ".join(f"{n} ± {v:.2g}" for n, v in zip(names_all, sd)))
-        if len(samples) < len(boot):
-            warnings.add(f"{len(boot) - len(samples)} of {len(boot)} bootstrap refits failed")
+    if data.boot is not None:
+        res.bootstrap, failed = varpro.refit_replicates(model, res, data.boot[:, use], err, delay)
+        if res.bootstrap:
+            log.info("bootstrap over shots (%d replicates): %s", len(data.boot) - failed,
+                     ", ".join(f"{k} ± {v.error:.2g}" for k, v in res.bootstrap.items()))
+        if failed:
+            warnings.add(f"{failed} of {len(data.boot)} bootstrap refits failed")
     if fcfg["bootstrap"]:
-        def refit(d, e, t):
-            order = np.argsort(t, kind="stable")
-            r = varpro.fit(model, d[order], e[order], t[order], res.params, linear_errors=False)
-            return [r.params[k] for k in model.param_names] + list(r.amplitudes.values())
-
-        bs = varpro.bootstrap(refit, (diff, err, delay), fcfg["bootstrap"], np.random.default_rng(fcfg["seed"]))
-        for n, v in zip(names_all, bs.std):
-            res.bootstrap.setdefault(n, {"error": float(v), "replicates": int(len(bs.samples)), "over": "delays"})
-        log.info("bootstrap over delays (%d resamples, %d failed): std %s", fcfg["bootstrap"], bs.n_failed,
-                 np.array2string(bs.std, precision=3))
+        errors, draws = varpro.refit_resamples(model, res, diff, err, delay, fcfg["bootstrap"],
+                                               np.random.default_rng(fcfg["seed"]))
+        for k, v in errors.items():
+            res.bootstrap.setdefault(k, v)
+        log.info("bootstrap over delays (%d resamples, %d failed): std %s", fcfg["bootstrap"], draws.n_failed,
+                 np.array2string(draws.std, precision=3))
     return res
 
 
-def _structures(fcfg, models, diff, err, use, basis, delay, warnings, amplitude=None):
+def _structures(fcfg, data, use, basis, warnings, amplitude=None):
+    """Best trajectory frame per delay, its positions and the configured geometric parameters."""
+    models = data.models
     pos = store.read(models, "traj_positions")
-    elements = [str(e) for e in models["element"][...]]
     n_members = len((models.attrs.get("input_files") or {}).get("trajectory", []) or [])
     if n_members > 1:
         warnings.add(f"the model curves average {n_members} trajectories, but positions and geometric parameters "
                      "are those of the first one: read them as indicative")
-    params, units = {}, {}
+    params = {}
     for name, idx in fcfg["geometry"].items():
         if max(idx) >= pos.shape[1]:
             raise ConfigError(f"fit.geometry.{name}", f"atom indices {idx}", f"indices below {pos.shape[1]} atoms")
         params[name] = geometry.distance(pos, *idx) if len(idx) == 2 else geometry.angle(pos, *idx)
-    ff = structure.fit_frames(diff[use], err[use], store.read(models, "traj_dS"), solvent=basis, params=params,
-                              delta_chi2=fcfg["delta_chi2"], amplitude=amplitude,
+    ff = structure.fit_frames(data.diff[use], data.err[use], store.read(models, "traj_dS"), solvent=basis,
+                              params=params, delta_chi2=fcfg["delta_chi2"], amplitude=amplitude,
                               min_sigma=fcfg["structure_min_sigma"])
     for w in ff.warnings:
         warnings.add(w)
     sig = ff.significant
-    out = {"frame": _rows(np.where(sig, ff.best_frame, -1), use),
-           "frame_amplitude": _rows(ff.amplitude, use),
+    out = {"frame": _rows(np.where(sig, ff.best_frame, -1), use), "frame_amplitude": _rows(ff.amplitude, use),
            "structure_significant": _rows(sig.astype(float), use) == 1.0}
     positions = np.full((use.size,) + pos.shape[1:], np.nan)
     positions[np.flatnonzero(use)[sig]] = pos[ff.best_frame[sig]]
     out["positions"] = positions
-    out["element"] = np.array(elements)
+    out["element"] = np.array([str(e) for e in models["element"][...]])
+    units = {}
     for name in params:
         for kind, values in (("", ff.value[name]), ("_lower", ff.lower[name]), ("_upper", ff.upper[name])):
             out[f"geometry_{name}{kind}"] = _rows(np.where(sig, values, np.nan), use)
             units[f"geometry_{name}{kind}"] = "Å" if len(fcfg["geometry"][name]) == 2 else "deg"
     if ff.at_end.any():
-        warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: the trajectory may be too short")
+        warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: "
+                     "the trajectory may be too short")
     return out, units
 
 
@@ -398,51 +433,58 @@ DIMS = {
 }
 
 
-def _write(out, q, delay, arrays, result, config, warnings):
+def _fit_attrs(fit, config):
+    """Attributes of a fit: parameters with errors (and bootstrap errors), chi2, flags."""
+    params = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
+                  "units": "ps" if k in TIME_PARAMETERS or k.startswith("lifetime_") else ""}
+              for k, v in fit.params.items()}
+    for k, v in fit.amplitudes.items():
+        params[k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
+                     "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
+    for k, info in fit.bootstrap.items():
+        params[k]["bootstrap_error"] = info.error
+        params[k]["bootstrap"] = f"{info.replicates} replicates over {info.over}"
+    return {"fit_mode": config["fit"]["mode"], "fit_parameters": params, "fit_reduced_chi2": float(fit.red_chi2),
+            "fit_converged": bool(fit.converged), "fit_at_bound": list(fit.at_bound),
+            "fit_species": list(fit.species_names), "fit_correlation_names": list(fit.corr_names)}
+
+
+def _array_attrs(name, result):
+    """Units and meaning of an array of the analysis store."""
     units = result["units"]
+    u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
+         "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
+         "solute_realspace": f"({units}) / Å", "population": "1", "frame_amplitude": "1",
+         "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
+    if name.startswith("geometry_"):
+        u = result["geometry_units"][name]
+    meaning = None
+    if name == "solute_realspace":
+        meaning = {"meaning": "r^2 dS(r) = r / (2 pi^2) * integral of q dS(q) sin(q r) exp(-kappa q^2) dq, "
+                              f"kappa = {REALSPACE_DAMPING} Å^2: which distances change"}
+    elif name in ("solvent_coef", "solvent_coef_err"):
+        meaning = {"terms": result["names"],
+                   "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
+                              "with differentials per K; normalization: dimensionless nuisance)"}
+    elif name.startswith("svd_"):
+        meaning = {"meaning": "SVD of the solute difference weighted by 1 / diff_err (dimensionless)"}
+    return u, meaning
+
+
+def _write(out, q, delay, arrays, result, config, warnings):
     fit = result.get("fit")
-    attrs = {"written": now(), "analysis_units": units, "absolute_scale_factor": result["factor"],
+    attrs = {"written": now(), "analysis_units": result["units"], "absolute_scale_factor": result["factor"],
              "svd_components": result["svd_count"], "solvent_terms": result["names"],
              "warnings": list(warnings)}
     if fit is not None:
-        attrs["fit_mode"] = config["fit"]["mode"]
-        attrs["fit_parameters"] = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
-                                       "units": "ps" if k in ("t0", "sigma", "lifetime", "osc_period", "osc_damping")
-                                       or k.startswith("tau") else ""}
-                                   for k, v in fit.params.items()}
-        for k, v in fit.amplitudes.items():
-            attrs["fit_parameters"][k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
-                                          "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
-        for k, info in (getattr(fit, "bootstrap", None) or {}).items():
-            attrs["fit_parameters"][k]["bootstrap_error"] = info["error"]
-            attrs["fit_parameters"][k]["bootstrap"] = f"{info['replicates']} replicates over {info['over']}"
-        attrs.update({"fit_reduced_chi2": float(fit.red_chi2), "fit_converged": bool(fit.converged),
-                      "fit_at_bound": list(fit.at_bound), "fit_species": list(fit.species_names),
-                      "fit_correlation_names": list(fit.corr_names)})
+        attrs.update(_fit_attrs(fit, config))
     with store.atomic_path(out) as tmp:
         g = store.new_group(tmp, attrs)
         store.write_array(g, "q", q, ["q"], units="1/Å")
         store.write_array(g, "delay", delay, ["delay"], units="ps")
         for name, values in arrays.items():
-            dims = DIMS.get(name, ("delay",))
-            u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
-                 "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
-                 "solute_realspace": f"({units}) / Å", "population": "1", "frame_amplitude": "1",
-                 "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
-            if name.startswith("geometry_"):
-                u = result["geometry_units"][name]
-            if name == "solute_realspace":
-                attrs_extra = {"meaning": "r^2 dS(r) = r / (2 pi^2) * integral of q dS(q) sin(q r) exp(-kappa q^2) dq, "
-                                          "kappa = 0.03 Å^2: which distances change"}
-            elif name == "solvent_coef" or name == "solvent_coef_err":
-                attrs_extra = {"terms": result["names"],
-                               "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
-                                          "with differentials per K; normalization: dimensionless nuisance)"}
-            elif name.startswith("svd_"):
-                attrs_extra = {"meaning": "SVD of the solute difference weighted by 1 / diff_err (dimensionless)"}
-            else:
-                attrs_extra = None
-            store.write_array(g, name, values, dims, units=u, attrs=attrs_extra)
+            units, extra = _array_attrs(name, result)
+            store.write_array(g, name, values, DIMS.get(name, ("delay",)), units=units, attrs=extra)
         if result["names"]:
             store.write_array(g, "term", np.array(result["names"]), ["term"])
         if fit is not None:

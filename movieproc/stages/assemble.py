@@ -8,6 +8,7 @@ Collects the binned differences, the selection counts, any analysis results
 from __future__ import annotations
 
 import logging
+from pathlib import Path
 
 from ..io import store
 from .common import now, versions
@@ -36,31 +37,30 @@ def _copy_group(src, dst, skip=()):
         store.write_array(dst, name, arr[...], dims, attrs=dict(arr.attrs))
 
 
-def run(binned_path, selection_path, shots_path, out, config: dict, extra=()):
+def run(inputs: dict, out: Path, config: dict) -> None:
     """Write the movie store ``out``.
 
     Parameters
     ----------
-    binned_path, selection_path, shots_path : path
-        Stores of the ``difference``, ``select`` and ``ingest`` stages.
+    inputs : dict
+        ``binned``, ``selection``, ``shots``: stores of the ``difference``, ``select``
+        and ``ingest`` stages; ``analysis`` (optional, store or list of stores): analysis
+        results whose arrays are added as they are.
     out : path
         Movie store to write.
     config : dict
-        The full validated config (stored in the attrs).
-    extra : sequence of path
-        Further stores (analysis results) whose arrays are added as they are.
+        The config sections the movie records in its attrs (every section that shapes
+        its contents; ``compute`` is left out: it says how to run, not what comes out).
     """
-    binned = store.open_group(binned_path, "binned store")
-    sel = store.open_group(selection_path, "selection")
-    shots = store.open_group(shots_path, "shots store")
-    warnings = list(shots.attrs.get("warnings", [])) + list(sel.attrs.get("warnings", [])) + \
-        list(binned.attrs.get("warnings", []))
-    extras = [store.open_group(p, "analysis store") for p in extra]
-    for g in extras:
-        warnings += list(g.attrs.get("warnings", []))
+    binned = store.open_group(inputs["binned"], "binned store")
+    sel = store.open_group(inputs["selection"], "selection")
+    shots = store.open_group(inputs["shots"], "shots store")
+    extra = inputs.get("analysis") or []
+    extras = [store.open_group(p, "analysis store") for p in (extra if isinstance(extra, (list, tuple)) else [extra])]
+    warnings = [w for g in (shots, sel, binned, *extras) for w in g.attrs.get("warnings", [])]
     attrs = {
         "title": f"movie of run '{config['run']['name']}'",
-        "config": config,
+        "config": {k: v for k, v in config.items() if k != "compute"},
         "input_files": shots.attrs.get("files", []),
         "input_checksums": shots.attrs.get("checksums", {}),
         "input_mode": shots.attrs.get("mode"),

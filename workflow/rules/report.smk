@@ -1,5 +1,9 @@
 # The movie and its figures.
 
+# Every section that shapes the movie (it records them in its attrs); `render` only
+# changes the figures and `compute` how stages run, so neither re-runs `assemble`.
+MOVIE_SECTIONS = [k for k in config if k not in ("render", "compute", "output_dir")]
+
 
 rule assemble:
     input:
@@ -10,22 +14,17 @@ rule assemble:
     output:
         zstore("movie"),
     params:
-        {k: v for k, v in config.items() if k != "compute"},
+        config=section(*MOVIE_SECTIONS),
     run:
-        from movieproc.stages import assemble
-
-        run_stage(assemble.run, folder(input.binned), folder(input.selection), folder(input.shots), folder(output[0]), config, extra=[folder(input.analysis)])
+        stage("assemble", input, output, params.config)
 
 
 rule render:
     input:
-        zstore("movie"),
+        movie=zstore("movie"),
     output:
         f"{OUT}/figures/.done",
     params:
-        section("render", "run"),
+        config=section("render", "run"),
     run:
-        from movieproc.stages import render
-
-        run_stage(render.run, folder(input[0]), f"{OUT}/figures", config)
-        Path(f"{OUT}/figures/.done").write_text("figures written\n")
+        stage("render", input, output, params.config)
