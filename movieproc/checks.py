@@ -102,7 +102,7 @@ def check_files(files) -> tuple[runfile.RunInfo | None, list[Problem]]:
 def _first(info, mask: np.ndarray) -> str:
     """File and local index of the first True shot of ``mask`` (N,)."""
     index = int(np.argmax(mask))
-    path, local = runfile._where(info, index)
+    path, local = runfile.shot_file(info, index)
     return f"first in {Path(path).name} at shot {local}"
 
 

@@ -358,6 +358,8 @@ def test_end_to_end_with_nasty_paths_content_tracking_leftovers_and_stale_marker
      {"key": "binning.count", "found": "0", "expected": "a value with minimum 1"}),
     (E.DataError("no pump-off shot survived the selection"), {}),
     (E.WorkflowFailed("the workflow stopped: x"), {}),
+    (E.ParameterError("p0.sigma", "-0.1", "a positive width in ps"),
+     {"parameter": "p0.sigma", "found": "-0.1", "expected": "a positive width in ps"}),
 ], ids=lambda v: type(v).__name__ if isinstance(v, Exception) else "")
 def test_every_error_survives_pickling(exc, fields):
     back = pickle.loads(pickle.dumps(exc))
@@ -368,7 +370,8 @@ def test_every_error_survives_pickling(exc, fields):
 
 def test_every_error_class_is_covered_by_the_pickling_test():
     classes = {c.__name__ for c in vars(E).values() if isinstance(c, type) and issubclass(c, E.MovieprocError)}
-    assert classes == {"MovieprocError", "InputError", "ConfigError", "DataError", "WorkflowFailed"}
+    assert classes == {"MovieprocError", "InputError", "ConfigError", "DataError", "WorkflowFailed",
+                       "ParameterError"}
 
 
 # ------------------------------------------------------------------ 8. the command line
