@@ -124,7 +124,8 @@ def solvent_curves(q, solv: dict):
 
     q0, w = solv["peak_q"], solv["peak_width"]
     h = 1e-3
-    dT = (s_of(q0 + h * solv["dq_dT"], w + h * solv["dwidth_dT"]) - s_of(q0 - h * solv["dq_dT"], w - h * solv["dwidth_dT"])) / (2 * h)
+    dT = (s_of(q0 + h * solv["dq_dT"], w + h * solv["dwidth_dT"])
+          - s_of(q0 - h * solv["dq_dT"], w - h * solv["dwidth_dT"])) / (2 * h)
     drho = (s_of(q0 + h * solv["dq_drho"], w) - s_of(q0 - h * solv["dq_drho"], w)) / (2 * h)
     return s_of(q0, w), dT, drho
 
@@ -189,7 +190,8 @@ def true_signal(scenario: dict, q, t):
     sol_fine = _gauss_convolve(t_fine, surv[:, None] * shape, sigma)
     dist_fine = _gauss_convolve(t_fine, (surv * dist)[:, None], sigma)[:, 0]
     heat_fine = _gauss_convolve(
-        t_fine, (kin["heat_fast"] * (tau >= 0) + kin["heat_slow"] * np.where(tau >= 0, 1 - surv, 0))[:, None], sigma)[:, 0]
+        t_fine, (kin["heat_fast"] * (tau >= 0)
+                 + kin["heat_slow"] * np.where(tau >= 0, 1 - surv, 0))[:, None], sigma)[:, 0]
 
     x = t - t0
     alpha = kin["excitation_fraction"]
@@ -208,7 +210,8 @@ def true_signal(scenario: dict, q, t):
     dS = solute + heat[:, None] * n_solv * dsdT[None, :]
     return {
         "dS": dS, "solute": solute, "heat": heat, "excited": alpha * excited, "distance": distance,
-        "S_total": s_ground + sum(incoherent(q, e) for e in els) + n_solv * s_solv, "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
+        "S_total": s_ground + sum(incoherent(q, e) for e in els) + n_solv * s_solv,
+        "dS_dT": n_solv * dsdT, "dS_drho": n_solv * dsdrho,
     }
 
 
@@ -431,5 +434,6 @@ def write_scenario_inputs(scenario_path, out_dir):
     _, dT, drho = solvent_curves(q, scenario["solvent"])
     n = scenario["solvent"]["molecules_per_solute"]
     np.savetxt(out / "solvent_differentials.csv", np.column_stack([q, n * dT, n * drho]), delimiter=",",
-               header="q (1/A), dS/dT at constant density (e.u./K), dS/drho at constant T (e.u. per g/cm3); per solute share of solvent",
+               header="q (1/A), dS/dT at constant density (e.u./K), dS/drho at constant T (e.u. per g/cm3); "
+                      "per solute share of solvent",
                fmt="%.6g")

@@ -3,8 +3,9 @@
 Each factor is the ratio between what a pixel records and what it would
 record for the same differential cross-section under reference conditions
 (the solid angle of a pixel at the beam centre of an untilted detector, no
-polarization loss, normal incidence on the sensor, no sample absorption). A corrected intensity is ``(frame - dark) / factor``; the
-combined divisor is :func:`combined_factor`.
+polarization loss, normal incidence on the sensor, no sample absorption). A
+corrected intensity is ``(frame - dark) / factor``; the combined divisor is
+:func:`combined_factor`.
 """
 
 from __future__ import annotations
@@ -169,7 +170,8 @@ def factor_from_config(geometry: Geometry, detector: dict) -> np.ndarray:
     return combined_factor(
         geometry,
         solid_angle=detector.get("solid_angle", True),
-        polarization_fraction=detector.get("polarization_fraction", 0.99) if detector.get("polarization", True) else None,
+        polarization_fraction=(detector.get("polarization_fraction", 0.99)
+                               if detector.get("polarization", True) else None),
         polarization_plane_deg=detector.get("polarization_plane_deg", 0.0),
         sensor=(sensor["mu_per_mm"], sensor["thickness_mm"]) if sensor.get("enabled") else None,
         absorption=(absorption["mu_per_mm"], absorption["thickness_mm"]) if absorption.get("enabled") else None,

@@ -94,6 +94,24 @@ def render_dark(shape, n, rng, *, level=10.0, noise=1.0, hot_pixels=None, hot_va
     return dark
 
 
+def _shadow(masked_region, detector, shape):
+    """Flat indices' mask of the pixels that read 0, or None."""
+    if isinstance(masked_region, str):
+        if masked_region != "default":
+            raise ValueError(f"masked_region must be 'default', an array or None, got {masked_region!r}")
+        masked_region = default_mask(detector, shape)
+    return None if masked_region is None else np.asarray(masked_region, dtype=bool).ravel()
+
+
+def _hot_indices(hot_pixels, shape, rng):
+    """Flat indices of the hot pixels (a count drawn from ``rng``, or given positions), or None."""
+    if isinstance(hot_pixels, (int, np.integer)):
+        hot_pixels = pick_hot_pixels(shape, hot_pixels, rng)
+    if hot_pixels is None or not len(hot_pixels):
+        return None
+    return np.ravel_multi_index(tuple(np.asarray(hot_pixels, dtype=np.int64).T), shape)
+
+
 def render_frames(q, curves, energies, detector, rng, *, shape=None, photons_per_pixel=1000.0,
                   hot_pixels=None, hot_value=50000.0, masked_region="default", curves_p2=None,
                   pump_polarization_deg=0.0, dark=None, dtype=None):
@@ -173,16 +191,8 @@ def render_frames(q, curves, energies, detector, rng, *, shape=None, photons_per
         if curves_p2.shape != curves.shape:
             raise ValueError(f"curves_p2 has shape {curves_p2.shape}, expected {curves.shape}")
         regressor = p2_regressor(two_theta, phi, np.deg2rad(pump_polarization_deg)).ravel()
-    if isinstance(masked_region, str):
-        if masked_region != "default":
-            raise ValueError(f"masked_region must be 'default', an array or None, got {masked_region!r}")
-        masked_region = default_mask(detector, shape)
-    shadow = None if masked_region is None else np.asarray(masked_region, dtype=bool).ravel()
-    if isinstance(hot_pixels, (int, np.integer)):
-        hot_pixels = pick_hot_pixels(shape, hot_pixels, rng)
-    hot = None
-    if hot_pixels is not None and len(hot_pixels):
-        hot = np.ravel_multi_index(tuple(np.asarray(hot_pixels, dtype=np.int64).T), shape)
+    shadow = _shadow(masked_region, detector, shape)
+    hot = _hot_indices(hot_pixels, shape, rng)
     pedestal = None if dark is None else np.asarray(dark, dtype=np.float64).ravel()
     noisy = photons_per_pixel is not None
     dtype = np.dtype(dtype or (np.uint16 if noisy else np.float32))

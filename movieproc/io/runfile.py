@@ -64,6 +64,32 @@ class RunInfo:
         return int(sum(self.counts))
 
     @property
+    def curve_q(self) -> np.ndarray:
+        """The q axis (nq,) of a curves-mode run, 1/Å.
+
+        Raises
+        ------
+        InputError
+            If the run holds frames, not curves.
+        """
+        if self.q is None:
+            raise InputError(self.files[0], "detector frames", "pre-integrated curves with their q axis")
+        return self.q
+
+    @property
+    def frames_shape(self) -> tuple:
+        """(ny, nx) of a frames-mode run.
+
+        Raises
+        ------
+        InputError
+            If the run holds curves, not frames.
+        """
+        if self.frame_shape is None:
+            raise InputError(self.files[0], "pre-integrated curves", "detector frames (N, ny, nx)")
+        return tuple(self.frame_shape)
+
+    @property
     def offsets(self) -> np.ndarray:
         """Index of the first shot of each file in the concatenated run."""
         return np.concatenate([[0], np.cumsum(self.counts)]).astype(np.int64)
@@ -305,7 +331,7 @@ def read_curves(info: RunInfo, start: int, stop: int) -> np.ndarray:
     InputError
         If any value is NaN or infinite, naming file, dataset and shot.
     """
-    out = np.empty((stop - start, info.q.size), dtype=np.float32)
+    out = np.empty((stop - start, info.curve_q.size), dtype=np.float32)
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
             block = _read(h5, "curves", path, slice(lo, hi))
@@ -322,7 +348,7 @@ def read_curves(info: RunInfo, start: int, stop: int) -> np.ndarray:
 
 def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
     """Read curves of shots [start, stop) as float32 (n, nq) without checking their values."""
-    out = np.empty((stop - start, info.q.size), dtype=np.float32)
+    out = np.empty((stop - start, info.curve_q.size), dtype=np.float32)
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
             out[g - start:g - start + (hi - lo)] = _read(h5, "curves", path, slice(lo, hi))
@@ -331,7 +357,7 @@ def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
 
 def read_frames(info: RunInfo, start: int, stop: int) -> np.ndarray:
     """Read detector frames of shots [start, stop) in their stored dtype (n, ny, nx)."""
-    out = np.empty((stop - start, *info.frame_shape), dtype=info.data_dtype)
+    out = np.empty((stop - start, *info.frames_shape), dtype=info.data_dtype)
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
             out[g - start:g - start + (hi - lo)] = _read(h5, "frames", path, slice(lo, hi))

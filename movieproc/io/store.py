@@ -92,7 +92,8 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
     data = np.asarray(data) if dtype is None else np.asarray(data, dtype=dtype)
     if data.ndim != len(dims):
         raise ValueError(f"array '{name}' has {data.ndim} axes but {len(dims)} dimension names")
-    zdtype = data.dtype
+    zdtype: object = data.dtype
+    fill: object
     if data.dtype.kind in "UOT":
         # variable-length UTF-8 strings: the string type zarr v3 specifies
         zdtype, fill = str, ""

@@ -15,14 +15,13 @@ none may.
 
 from __future__ import annotations
 
-import os
-import uuid
 from pathlib import Path
 from typing import NamedTuple
 
 import numpy as np
 
 from ..errors import InputError
+from .store import atomic_path
 
 __all__ = ["Trajectory", "read_structure", "read_trajectory", "read_ensemble", "write_trajectory"]
 
@@ -129,7 +128,7 @@ def read_trajectory(path):
             raise InputError(where, f"{len(atoms)} atoms", f"{len(elements)} atoms as in frame 0")
         symbols = tuple(atoms.get_chemical_symbols())
         if symbols != elements:
-            i = next(i for i, (a, b) in enumerate(zip(symbols, elements)) if a != b)
+            i = next(i for i, (a, b) in enumerate(zip(symbols, elements, strict=True)) if a != b)
             raise InputError(where, f"element {symbols[i]} at atom {i}",
                              f"{elements[i]} (the element order of frame 0)")
         pos = atoms.get_positions()
@@ -202,7 +201,7 @@ def read_ensemble(paths):
         raise InputError("trajectory ensemble", "no files", "at least one trajectory file")
     members = [read_trajectory(p) for p in paths]
     first = members[0]
-    for p, m in zip(paths[1:], members[1:]):
+    for p, m in zip(paths[1:], members[1:], strict=True):
         if m.elements != first.elements:
             raise InputError(p, f"atoms {''.join(m.elements)}",
                              f"the atoms of {paths[0]} ({''.join(first.elements)}) in the same order")
@@ -214,6 +213,39 @@ def read_ensemble(paths):
             raise InputError(p, "frame times that differ", f"the frame times of {paths[0]}")
     positions = np.stack([m.positions for m in members])
     return Trajectory(first.elements, positions, first.times, tuple(str(p) for p in paths))
+
+
+def _checked_frames(path, elements, positions, times_ps):
+    """Positions (F, N, 3) and times (F,) or None, checked; InputError naming ``path`` otherwise."""
+    positions = np.asarray(positions, dtype=np.float64)
+    if positions.ndim == 2:
+        positions = positions[None]
+    if positions.ndim != 3 or positions.shape[2] != 3 or positions.shape[1] != len(elements):
+        raise InputError(path, f"positions of shape {positions.shape} for {len(elements)} atoms",
+                         "positions (F, N, 3) with one element symbol per atom")
+    if len(elements) == 0:
+        raise InputError(path, "no atoms", "at least one atom")
+    if not np.all(np.isfinite(positions)):
+        k = int(np.argwhere(~np.isfinite(positions))[0, 0])
+        raise InputError(f"{path}, frame {k}", "non-finite coordinates", "finite positions (Å)")
+    if times_ps is not None:
+        times_ps = np.asarray(times_ps, dtype=np.float64)
+        if times_ps.shape != (positions.shape[0],) or not np.all(np.isfinite(times_ps)):
+            raise InputError(path, f"times of shape {times_ps.shape}",
+                             f"{positions.shape[0]} finite frame times (ps)")
+    return positions, times_ps
+
+
+def _file_format(path, with_times):
+    """The ASE format name for ``path``'s suffix."""
+    suffix = path.suffix.lower()
+    if suffix == ".pdb":
+        if with_times:
+            raise InputError(path, "frame times for a PDB file", "an .xyz file to hold frame times")
+        return "proteindatabank"
+    if suffix in (".xyz", ".extxyz"):
+        return "extxyz"
+    raise InputError(path, f"file suffix '{suffix}'", "'.xyz', '.extxyz' or '.pdb'")
 
 
 def write_trajectory(path, elements, positions, times_ps=None):
@@ -236,44 +268,15 @@ def write_trajectory(path, elements, positions, times_ps=None):
     from ase import Atoms
 
     path = Path(path)
-    positions = np.asarray(positions, dtype=np.float64)
-    if positions.ndim == 2:
-        positions = positions[None]
     elements = [str(e) for e in elements]
-    if positions.ndim != 3 or positions.shape[2] != 3 or positions.shape[1] != len(elements):
-        raise InputError(path, f"positions of shape {positions.shape} for {len(elements)} atoms",
-                         "positions (F, N, 3) with one element symbol per atom")
-    if len(elements) == 0:
-        raise InputError(path, "no atoms", "at least one atom")
-    if not np.all(np.isfinite(positions)):
-        k = int(np.argwhere(~np.isfinite(positions))[0, 0])
-        raise InputError(f"{path}, frame {k}", "non-finite coordinates", "finite positions (Å)")
-    if times_ps is not None:
-        times_ps = np.asarray(times_ps, dtype=np.float64)
-        if times_ps.shape != (positions.shape[0],) or not np.all(np.isfinite(times_ps)):
-            raise InputError(path, f"times of shape {times_ps.shape}",
-                             f"{positions.shape[0]} finite frame times (ps)")
-    suffix = path.suffix.lower()
-    if suffix == ".pdb":
-        if times_ps is not None:
-            raise InputError(path, "frame times for a PDB file", "an .xyz file to hold frame times")
-        fmt = "proteindatabank"
-    elif suffix in (".xyz", ".extxyz"):
-        fmt = "extxyz"
-    else:
-        raise InputError(path, f"file suffix '{suffix}'", "'.xyz', '.extxyz' or '.pdb'")
+    positions, times_ps = _checked_frames(path, elements, positions, times_ps)
+    fmt = _file_format(path, times_ps is not None)
     try:
         frames = [Atoms(symbols=elements, positions=p) for p in positions]
     except KeyError as exc:
         raise InputError(path, f"unknown element symbol {exc}", "chemical element symbols") from None
     if times_ps is not None:
-        for atoms, t in zip(frames, times_ps):
+        for atoms, t in zip(frames, times_ps, strict=True):
             atoms.info["time_ps"] = float(t)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{uuid.uuid4().hex[:8]}")
-    try:
+    with atomic_path(path) as tmp:
         ase.io.write(str(tmp), frames, format=fmt)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()

@@ -49,7 +49,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     warnings = Warnings("ingest", log)
     table = runfile.read_table(info)
     log.info("run of %d shots in %d file(s), %d q points (%.3g-%.3g 1/Å)", info.n_shots, len(info.files),
-             info.q.size, info.q[0], info.q[-1])
+             info.curve_q.size, info.curve_q[0], info.curve_q[-1])
     if "photon_energy" in table:
         if not np.all(np.isfinite(table["photon_energy"])):
             warnings.add("shots/photon_energy has non-finite values")

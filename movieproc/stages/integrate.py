@@ -294,13 +294,12 @@ def _geometry_check(info, detector, setup, warnings) -> dict:
         return {"verdict": "not run", "message": "detector.geometry_check is false"}
     frames = runfile.read_frames(info, 0, min(CHECK_FRAMES, info.n_shots))
     mean = frames.mean(axis=0, dtype=np.float64)
-    check = None
     # the configured q range first; the whole frame when a wrong geometry moves the ring out of it
-    for q_range in ((detector["q_min"], detector["q_max"]), None):
-        check = ringcheck.ring_check(mean, setup.mask, setup.geometry, setup.reference_energy, q_range=q_range,
+    check = ringcheck.ring_check(mean, setup.mask, setup.geometry, setup.reference_energy,
+                                 q_range=(detector["q_min"], detector["q_max"]), correction=setup.factor)
+    if check.verdict == "unusable":
+        check = ringcheck.ring_check(mean, setup.mask, setup.geometry, setup.reference_energy,
                                      correction=setup.factor)
-        if check.verdict != "unusable":
-            break
     log.info("geometry check (%d frames): %s", frames.shape[0], check.message)
     if check.verdict == "suspect":
         warnings.add(f"geometry check on the first {frames.shape[0]} frames: {check.message} "
