@@ -309,7 +309,7 @@ def _prepare(config: dict, forcerun, dryrun: bool, workdir) -> tuple[Path, set]:
     return out, forcerun
 
 
-def run_workflow(config: dict, cores: int | None = 2, targets=(), forcerun=(), dryrun=False, workdir=None,
+def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=(), dryrun=False, workdir=None,
                  quiet=False, profile=None, jobs: int | None = None) -> list:
     """Run the workflow on a validated config.
 
