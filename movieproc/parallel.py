@@ -31,7 +31,7 @@ import atexit
 import contextvars
 import logging
 import threading
-from contextlib import contextmanager, nullcontext
+from contextlib import AbstractContextManager, contextmanager, nullcontext
 
 import dask
 import numpy as np
@@ -50,7 +50,7 @@ DEFAULT_CONNECT_TIMEOUT_S = 10.0
 #: "auto" shares the machine's memory equally among the workers.
 DEFAULT_MEMORY_PER_WORKER = "auto"
 
-_SETTINGS: contextvars.ContextVar[dict] = contextvars.ContextVar("movieproc_compute", default={})
+_SETTINGS: contextvars.ContextVar[dict | None] = contextvars.ContextVar("movieproc_compute", default=None)
 _CLUSTERS: dict = {}
 _CLUSTERS_LOCK = threading.Lock()
 
@@ -60,7 +60,7 @@ def chunk_ranges(n: int, chunk: int):
     if chunk <= 0:
         raise ValueError("chunk must be positive")
     starts = np.arange(0, n, chunk)
-    return [(int(s), int(min(s + chunk, n))) for s in starts]
+    return [(int(s), min(int(s) + chunk, n)) for s in starts]
 
 
 @contextmanager
@@ -131,7 +131,7 @@ def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progres
     if progress:
         from dask.diagnostics import ProgressBar
 
-        bar = ProgressBar(minimum=2.0)
+        bar: AbstractContextManager = ProgressBar(minimum=2.0)
     else:
         bar = nullcontext()
     with bar:
@@ -148,7 +148,7 @@ def _distributed(tasks, scheduler: str, workers: int, label: str) -> list:
     from distributed import Client
     from distributed.scheduler import KilledWorker
 
-    settings = _SETTINGS.get()
+    settings = _SETTINGS.get() or {}
     timeout = float(settings.get("connect_timeout_s", DEFAULT_CONNECT_TIMEOUT_S))
     address = local_cluster(workers, settings.get("memory_per_worker", DEFAULT_MEMORY_PER_WORKER)).scheduler_address \
         if scheduler == LOCAL_CLUSTER else scheduler

@@ -358,8 +358,8 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
         if not config_file.exists():
             write_effective_config(view, workdir, config_file)
         try:
-            updated = _snakemake(config_file, _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config),
-                                 workdir, out)
+            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config)
+            updated = _snakemake(config_file, request, workdir, out)
         except BaseException as exc:  # a stage's failure, or Ctrl-C
             if not dryrun:
                 from .stages.common import now
@@ -508,8 +508,8 @@ def load_profile(profile) -> argparse.Namespace:
             return get_argument_parser(profiles=[str(path)]).parse_args([])
     except SystemExit:
         lines = [line for line in messages.getvalue().splitlines() if "error" in line] or ["an unusable profile"]
-        raise InputError(path, lines[-1].split("error:", 1)[-1].strip(),
-                         "options of the snakemake command (see snakemake --help), in long form without dashes") from None
+        raise InputError(path, lines[-1].split("error:", 1)[-1].strip(), "options of the snakemake command "
+                         "(see snakemake --help), in long form without dashes") from None
 
 
 def _executor_settings(run: _Run) -> tuple[str, dict]:

@@ -16,7 +16,6 @@ import threading
 import time
 from pathlib import Path
 
-import numpy as np
 import pytest
 import zarr
 
