@@ -347,6 +347,10 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
     with tempfile.TemporaryDirectory(prefix="movieproc-config-") as scratch:
         view = snakemake_view(config, workdir, create=not dryrun)
         config_file = Path(scratch) / "config.yaml"
+        if options is not None and view != config and (options.executor or "local") not in BUILTIN_EXECUTORS:
+            log.warning("paths with '{' or '}' reach Snakemake as links in %s on this machine: jobs on other "
+                        "nodes see them only if that folder is shared; rename the files or folders to be sure",
+                        tempfile.gettempdir())
         if not dryrun:
             from .stages.common import now
 
@@ -518,7 +522,7 @@ def _executor_settings(run: _Run) -> tuple[str, dict]:
 
     args = run.profile
     if args is None:
-        return "local", {"resources": ResourceSettings(cores=int(run.cores or 2)),
+        return "local", {"resources": ResourceSettings(cores=int(run.cores or run.jobs or 2)),
                          "execution_settings": ExecutionSettings(lock=False)}
     from snakemake_interface_executor_plugins.registry import ExecutorPluginRegistry
 
