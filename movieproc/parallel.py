@@ -21,8 +21,9 @@ machine): everything a stage sends them names files by absolute path (the workfl
 ``stage()`` gives stages absolute paths). A worker that dies while a stage runs (killed,
 out of memory) is replaced and its chunks are computed again on another worker: chunks
 write disjoint parts of a store or return values, so a re-computed chunk gives the same
-result. A chunk whose workers die ``distributed.scheduler.allowed-failures`` times (dask's
-setting, 3 by default) fails the stage with that reason named.
+result. A chunk whose workers die more often than ``distributed.scheduler.allowed-failures``
+(dask's setting, 3 by default) fails the stage with that reason named; nothing of the stage is
+kept (its output is written atomically), and running again completes it.
 """
 
 from __future__ import annotations
