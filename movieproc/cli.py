@@ -49,10 +49,19 @@ def _add_set(p):
 def _add_config_args(p, default_config="config/config.yaml, the demo"):
     p.add_argument("--config", "-c", help=f"config YAML (default: {default_config})")
     _add_set(p)
-    p.add_argument("--cores", type=int, default=2, help="cores for the workflow (default 2)")
+    p.add_argument("--cores", type=int, help="cores for the workflow (default 2; with --profile: the profile's, "
+                   "else jobs times compute.workers for a cluster executor)")
     p.add_argument("--dry-run", action="store_true", help="show which stages would run, run nothing")
     p.add_argument("--force", nargs="+", default=[], metavar="STAGE",
                    help="re-run these stages even if up to date (e.g. ingest)")
+
+
+def _add_executor_args(p):
+    p.add_argument("--profile", metavar="DIR", help="Snakemake profile (a folder with config.yaml, or the file) "
+                   "naming the executor and per-rule resources, e.g. workflow/profiles/cluster; "
+                   "--set values and config.effective.yaml work as without it")
+    p.add_argument("--jobs", "-j", type=int, metavar="N", help="jobs at once (cluster jobs with a cluster "
+                   "executor; overrides the profile's jobs)")
 
 
 def _run(config, args):
@@ -60,7 +69,8 @@ def _run(config, args):
 
     out = Path(config["output_dir"])
     try:
-        updated = run_workflow(config, cores=args.cores, forcerun=args.force, dryrun=args.dry_run)
+        updated = run_workflow(config, cores=args.cores, forcerun=args.force, dryrun=args.dry_run,
+                               profile=args.profile, jobs=args.jobs)
     except WorkflowFailed:
         note = stale_note(output_folder(config))
         if note:
@@ -231,6 +241,7 @@ def build_parser():
 
     p = sub.add_parser("run", help="run the workflow on a config (default: the demo config)")
     _add_config_args(p)
+    _add_executor_args(p)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("process", help="process run files with generic settings (config/process.yaml) plus overrides")
@@ -240,6 +251,7 @@ def build_parser():
     p.add_argument("--geometry", metavar="FILE", help="YAML file whose detector: section gives the detector "
                    "geometry (needed for frames; --set values override it)")
     _add_config_args(p, default_config="config/process.yaml, generic settings")
+    _add_executor_args(p)
     p.set_defaults(func=cmd_process)
 
     p = sub.add_parser("check", help="list every problem of run files and a config at once (exit 1 if any is fatal)")

@@ -18,12 +18,14 @@ figures there come from an earlier run; a successful run removes it.
 
 from __future__ import annotations
 
+import argparse
 import hashlib
 import json
 import logging
 import os
 import shutil
 import tempfile
+from dataclasses import dataclass
 from pathlib import Path
 
 from .config import ROOT
@@ -307,16 +309,18 @@ def _prepare(config: dict, forcerun, dryrun: bool, workdir) -> tuple[Path, set]:
     return out, forcerun
 
 
-def run_workflow(config: dict, cores: int = 2, targets=(), forcerun=(), dryrun=False, workdir=None,
-                 quiet=False) -> list:
+def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=(), dryrun=False, workdir=None,
+                 quiet=False, profile=None, jobs: int | None = None) -> list:
     """Run the workflow on a validated config.
 
     Parameters
     ----------
     config : dict
         Validated config (:func:`movieproc.config.load`).
-    cores : int
-        Cores Snakemake may use (stages use ``compute.workers`` threads each).
+    cores : int, optional
+        Cores Snakemake may use (stages use ``compute.workers`` threads each). None: the
+        profile's ``cores``, else 2 with the local executor and ``jobs * compute.workers``
+        with a cluster executor.
     targets : sequence of str
         Files to build (default: the rule ``all``).
     forcerun : sequence of str
@@ -326,31 +330,50 @@ def run_workflow(config: dict, cores: int = 2, targets=(), forcerun=(), dryrun=F
     workdir : path, optional
         Working directory (default: the current one); relative paths in the
         config are relative to it.
+    profile : path, optional
+        A Snakemake profile (folder with ``config.yaml``, or the YAML file): its executor,
+        jobs, resources and the executor plugin's settings (see :func:`load_profile`).
+    jobs : int, optional
+        Jobs at once (cluster jobs with a cluster executor); overrides the profile's ``jobs``.
 
     Returns
     -------
     list of str
         The files that Snakemake (re)made in this run.
     """
+    options = load_profile(profile) if profile else None
     out, forcerun = _prepare(config, forcerun, dryrun, workdir)
     stats = _stats(config, workdir)
     with tempfile.TemporaryDirectory(prefix="movieproc-config-") as scratch:
         view = snakemake_view(config, workdir, create=not dryrun)
+        config_file = Path(scratch) / "config.yaml"
+        if options is not None and view != config and (options.executor or "local") not in BUILTIN_EXECUTORS:
+            log.warning("paths with '{' or '}' reach Snakemake as links in %s on this machine: jobs on other "
+                        "nodes see them only if that folder is shared; rename the files or folders to be sure",
+                        tempfile.gettempdir())
         if not dryrun:
             from .stages.common import now
 
             mark_stale(out, f"A run started at {now()} and has not finished (if this file stays, it was "
                             "interrupted or killed).")
-            write_effective_config(config, workdir)
-        config_file = write_effective_config(view, workdir, Path(scratch) / "config.yaml")
+            effective = write_effective_config(config, workdir)
+            if view == config:  # the provenance is the file every job reads (jobs on other nodes included)
+                config_file = effective
+        if not config_file.exists():
+            write_effective_config(view, workdir, config_file)
         try:
-            updated = _snakemake(config_file, cores, targets, forcerun, dryrun, workdir, out)
+            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config)
+            updated = _snakemake(config_file, request, workdir, out)
         except BaseException as exc:  # a stage's failure, or Ctrl-C
             if not dryrun:
                 from .stages.common import now
 
                 mark_stale(out, f"The run of {now()} failed: {str(exc) or type(exc).__name__}")
             raise
+        finally:
+            from .parallel import close_local_clusters
+
+            close_local_clusters()
     if not dryrun:
         (out / STALE_FILE).unlink(missing_ok=True)
         _remember_checksums(config["run"]["files"], out, workdir, stats)
@@ -384,29 +407,146 @@ def _remember_checksums(files, out: Path, workdir, before: dict):
     input_checksums(files, out, workdir, save=True)  # hashes only what the store did not give
 
 
-def _snakemake(config_file: Path, cores, targets, forcerun, dryrun, workdir, out: Path) -> list:
+@dataclass(frozen=True)
+class _Run:
+    """What :func:`run_workflow` asks of Snakemake (see its parameters)."""
+
+    cores: int | None
+    targets: tuple
+    forcerun: frozenset
+    dryrun: bool
+    jobs: int | None
+    profile: argparse.Namespace | None
+    config: dict
+
+
+def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
     from snakemake.api import SnakemakeApi
-    from snakemake.settings.types import (ConfigSettings, DAGSettings, ExecutionSettings, OutputSettings,
-                                          ResourceSettings)
+    from snakemake.settings.types import ConfigSettings, DAGSettings, OutputSettings
 
     updated: list = []
     error_file = out / "last_error.txt"
-    if not dryrun:
+    if not run.dryrun:
         error_file.unlink(missing_ok=True)
+    executor, settings = _executor_settings(run)
     try:
-        with SnakemakeApi(OutputSettings(dryrun=dryrun, quiet=None)) as api:
+        with SnakemakeApi(OutputSettings(dryrun=run.dryrun, quiet=None,
+                                         printshellcmds=bool(getattr(run.profile, "printshellcmds", False)))) as api:
             wf = api.workflow(
-                resource_settings=ResourceSettings(cores=int(cores)),
+                resource_settings=settings.pop("resources"),
                 config_settings=ConfigSettings(configfiles=[config_file], replace_workflow_config=True),
                 snakefile=SNAKEFILE,
-                workdir=_base(workdir),
+                workdir=_base(workdir).absolute(),
             )
-            dag = wf.dag(DAGSettings(targets=frozenset(targets), forcerun=frozenset(forcerun)))
-            dag.execute_workflow(executor="local", pseudo_executor="dryrun" if dryrun else None,
-                                 execution_settings=ExecutionSettings(lock=False), updated_files=updated)
+            dag = wf.dag(DAGSettings(targets=frozenset(run.targets), forcerun=frozenset(run.forcerun),
+                                     force_incomplete=bool(getattr(run.profile, "rerun_incomplete", False))))
+            dag.execute_workflow(executor=executor, pseudo_executor="dryrun" if run.dryrun else None,
+                                 updated_files=updated, **settings)
     except MovieprocError:
         raise
     except Exception as exc:  # snakemake raises its own types, after logging the failing job
         cause = error_file.read_text().strip() if error_file.exists() else " ".join(str(exc).split())
         raise WorkflowFailed(f"the workflow stopped: {cause} (details in the log above)") from exc
     return updated
+
+
+# ------------------------------------------------------------------ Snakemake profiles
+
+#: Executors built into Snakemake (no plugin to install).
+BUILTIN_EXECUTORS = ("local", "dryrun", "touch")
+#: Rules whose stages run ``compute.workers`` dask workers (or numba threads): with a profile, their
+#: jobs ask for that many threads unless the profile's ``set-threads`` names them.
+PARALLEL_RULES = ("ingest", "select", "difference", "scatter", "analyze")
+
+
+def profile_file(profile) -> Path:
+    """The YAML file of a Snakemake profile: the path itself, or ``config.yaml`` (``profile.yaml``) in it."""
+    path = Path(profile)
+    if path.is_file():
+        return path
+    for name in ("config.yaml", "profile.yaml"):
+        if (path / name).is_file():
+            return path / name
+    raise InputError(path, "no such file" if not path.exists() else "a folder without config.yaml or profile.yaml",
+                     "a Snakemake profile: a folder with config.yaml (e.g. workflow/profiles/cluster) or the YAML file")
+
+
+def load_profile(profile) -> argparse.Namespace:
+    """Read a Snakemake profile the way the ``snakemake`` command does (its own parser), after
+    checking that its executor's plugin is installed.
+
+    Returns
+    -------
+    argparse.Namespace
+        Snakemake's options with the profile's values (``executor``, ``jobs``, ``set_threads``,
+        ``default_resources``, the executor plugin's own settings...).
+
+    Raises
+    ------
+    InputError
+        Naming the profile file: unreadable, an executor whose plugin is not installed (with the
+        package to install), or a key Snakemake does not know.
+    """
+    import contextlib
+    import io
+
+    import yaml
+    from snakemake.cli import get_argument_parser
+    from snakemake_interface_executor_plugins.registry import ExecutorPluginRegistry
+
+    path = profile_file(profile)
+    try:
+        raw = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    except (OSError, yaml.YAMLError) as exc:
+        raise InputError(path, f"an unreadable profile ({exc})", "a YAML mapping of Snakemake options") from None
+    if not isinstance(raw, dict):
+        raise InputError(path, f"{type(raw).__name__} at the top level", "a YAML mapping of Snakemake options")
+    executor = str(raw.get("executor", "local"))
+    if executor not in BUILTIN_EXECUTORS and not ExecutorPluginRegistry().is_installed(executor):
+        raise InputError(path, f"executor: {executor}, whose Snakemake plugin is not installed",
+                         f"the plugin installed (python3 -m pip install snakemake-executor-plugin-{executor}), or "
+                         "another executor")
+    messages = io.StringIO()
+    try:
+        with contextlib.redirect_stderr(messages):
+            return get_argument_parser(profiles=[str(path)]).parse_args([])
+    except SystemExit:
+        lines = [line for line in messages.getvalue().splitlines() if "error" in line] or ["an unusable profile"]
+        raise InputError(path, lines[-1].split("error:", 1)[-1].strip(), "options of the snakemake command "
+                         "(see snakemake --help), in long form without dashes") from None
+
+
+def _executor_settings(run: _Run) -> tuple[str, dict]:
+    """The executor's name and the settings objects of ``execute_workflow`` (plus ``resources``)."""
+    from snakemake.settings.types import ExecutionSettings, RemoteExecutionSettings, ResourceSettings
+
+    args = run.profile
+    if args is None:
+        return "local", {"resources": ResourceSettings(cores=int(run.cores or run.jobs or 2)),
+                         "execution_settings": ExecutionSettings(lock=False)}
+    from snakemake_interface_executor_plugins.registry import ExecutorPluginRegistry
+
+    executor = args.executor or "local"
+    plugin = ExecutorPluginRegistry().get_plugin(executor)
+    local = plugin.common_settings.local_exec
+    jobs = run.jobs if run.jobs is not None else args.jobs
+    workers = int(run.config["compute"]["workers"])
+    cores = run.cores or args.cores or ((jobs or 2) if local else max(1, int(jobs or 1)) * workers)
+    threads = {rule: min(workers, int(cores)) for rule in PARALLEL_RULES}
+    threads.update(args.set_threads or {})
+    resources = ResourceSettings(cores=int(cores), nodes=None if local else jobs, max_threads=args.max_threads,
+                                 resources=args.resources or {}, overwrite_threads=threads,
+                                 overwrite_resources=args.set_resources or {},
+                                 default_resources=args.default_resources)
+    log.info("Snakemake executor %s: %s core(s)%s, parallel stages with %d thread(s) each", executor, cores,
+             "" if local else f", {jobs} job(s) at once", workers)
+    return executor, {
+        "resources": resources,
+        "executor_settings": plugin.get_settings(args),
+        "execution_settings": ExecutionSettings(lock=False, keep_going=bool(args.keep_going),
+                                                latency_wait=int(args.latency_wait), retries=int(args.retries or 0)),
+        "remote_execution_settings": RemoteExecutionSettings(
+            jobname=args.jobname, jobscript=args.jobscript, envvars=args.envvars or (),
+            max_status_checks_per_second=args.max_status_checks_per_second,
+            seconds_between_status_checks=args.seconds_between_status_checks, precommand=args.precommand),
+    }
