@@ -31,7 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, sparse
 
-__all__ = ["reference_use_counts", "reference_gram", "bin_coefficient_overlap", "overlap_from_gram", "bin_correlation", "check_correlation",
+__all__ = ["reference_use_counts", "reference_gram", "bin_coefficient_overlap", "overlap_from_gram",
+           "bin_correlation", "check_correlation",
            "cholesky_correlation", "whiten", "decorrelate",
            "bootstrap_weights", "BootstrapChunk", "BootstrapSums", "bootstrap_chunk", "bootstrap_replicates",
            "replicate_correlation"]
