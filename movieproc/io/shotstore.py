@@ -24,6 +24,7 @@ import hashlib
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -155,23 +156,21 @@ class ShotStore:
     path : Path
     group : zarr.Group
     q : ndarray (nq,) float64, 1/Å
-    table : Mapping of str -> ndarray (N,)
-        :class:`ShotTable` (fields read on first use) or a plain dict.
+    table : ShotTable
+        The shot table, str -> ndarray (N,), fields read on first use.
     chunk : int
         Shots per stored chunk: the natural unit of streaming.
     """
 
     path: Path
-    group: object
+    group: Any
     q: np.ndarray
-    table: Mapping
+    table: ShotTable
     chunk: int
 
     @property
     def n_shots(self) -> int:
-        if isinstance(self.table, ShotTable):
-            return self.table.n_shots
-        return len(self.table["pulse_id"])
+        return self.table.n_shots
 
     def curves(self, start: int, stop: int, name: str = "curves") -> np.ndarray:
         """Per-shot curves of shots [start, stop), float32 (n, nq)."""

@@ -49,7 +49,7 @@ WEIGHT_ROWS_PER_DRAW = 16
 
 #: Pump-on shots whose reference uses are counted at once by :func:`reference_gram`
 #: (bounds its temporaries to some tens of MB whatever the run length).
-GRAM_BLOCK = 1 << 18
+GRAM_BLOCK = 1 << 16
 
 
 # ----------------------------------------------------------------------------- analytic covariance

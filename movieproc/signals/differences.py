@@ -21,7 +21,7 @@ from ..shots.binning import BinSums, accumulate
 
 #: Pump-on shots whose candidate references are ranked at once: bounds the (block, 2k)
 #: temporaries of :func:`nearest_references` to a few tens of MB whatever the run length.
-REFERENCE_BLOCK = 1 << 18
+REFERENCE_BLOCK = 1 << 16
 
 
 def index_dtype(n):

@@ -102,6 +102,8 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         on_idx, refs = _references(shots, keep, index, differences, warnings)
         on_bin = index[on_idx]
         del keep, index
+        for name in ("pulse_id", "pump_on"):  # the largest fields, not needed beyond the references
+            shots.table.drop(name)
         weights = covariance.bootstrap_weights(np.random.default_rng(differences["seed"]), n_boot,
                                                shots.n_shots) if n_boot else None
         boot = covariance.BootstrapSums.zeros(n_boot, nbins, shots.q.size) if n_boot else None

@@ -45,6 +45,8 @@ def _flags(shots, sel, normalization, compute, warnings):
     pe, tim, outliers = sel["pulse_energy"], sel["timing"], sel["outliers"]
     cut = selection.pulse_energy_flags(table["pulse_energy"], pe["min"], pe["max"], pe["min_fraction_of_median"])
     flags[cut] |= selection.REASONS["pulse_energy"]
+    del cut
+    table.drop("pulse_energy")  # not needed again here: frees 8 bytes per shot
     flags |= selection.timing_flags(table["timing_edge"], table.get("timing_amplitude"), tim["require_edge"],
                                     tim["min_amplitude"], tim["edge_range_px"])
     if tim["min_amplitude"] is not None and "timing_amplitude" not in table:
