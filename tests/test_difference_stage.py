@@ -119,3 +119,15 @@ def test_batches_cover_every_range_once():
     groups = shotstore.batches(ranges, 2)
     assert [r for g in groups for r in g] == ranges
     assert max(len(g) for g in groups) == shotstore.CHUNKS_PER_WORKER * 2
+
+
+def test_shot_table_reads_fields_on_first_use(tmp_path):
+    curves, keep, pump_on, index = make_run(tmp_path, seed=4)
+    shots = shotstore.open_shots(tmp_path / "shots.zarr")
+    table = shots.table
+    assert shots.n_shots == N and len(table) == 5 and "pulse_id" in table and "photon_energy" not in table
+    assert table.get("photon_energy") is None
+    np.testing.assert_array_equal(table["pump_on"], pump_on)
+    table.drop("pump_on")  # read again on the next use, with the same values
+    np.testing.assert_array_equal(table["pump_on"], pump_on)
+    assert dict(table.items()).keys() == {"pulse_id", "pump_on", "stage_delay", "pulse_energy", "timing_edge"}
