@@ -419,6 +419,8 @@ def bootstrap_weights(rng, n_boot, n_shots):
     """
     if not isinstance(rng, np.random.Generator):
         raise TypeError(f"rng must be a seeded numpy.random.Generator, got {type(rng).__name__}")
+    if int(n_boot) < 0:
+        raise ValueError(f"n_boot must be a number of replicates >= 0, got {n_boot}")
     out = np.empty((int(n_boot), int(n_shots)), np.uint8)
     for a in range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW):
         rows = out[a:a + WEIGHT_ROWS_PER_DRAW]
