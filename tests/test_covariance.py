@@ -87,6 +87,21 @@ def test_overlap_is_the_coefficient_gram_matrix_and_its_diagonal_the_shared_fact
     assert np.all(np.diag(R, 1) > 0.1)  # neighbours share references in this scan
 
 
+@pytest.mark.parametrize("block", [1, 7, 100, 10_000])
+def test_streamed_gram_equals_the_use_count_product(block):
+    # U U^T from the whole sparse use-count matrix against the block-streamed sums; shuffled
+    # bins and a few far references (non-monotone use) exercise the carried uses
+    on_idx, bins, refs = stage_scan(4, n=2000, nbins=8, k=3)
+    refs = refs.copy()
+    refs[::97, 0] = refs[-1, 0]  # some early shots use a late reference
+    U, _ = C.reference_use_counts(bins, refs, 8)
+    gram, n = C.reference_gram(bins, refs, 8, block=block)
+    np.testing.assert_array_equal(gram, (U @ U.T).toarray())
+    np.testing.assert_array_equal(n, np.bincount(bins[bins >= 0], minlength=8))
+    with pytest.raises(ValueError, match="block"):
+        C.reference_gram(bins, refs, 8, block=0)
+
+
 def test_empty_bin_gets_zero_overlap_and_identity_correlation():
     refs = np.array([[0, 1], [0, 1], [2, 3]])
     bins = np.array([0, 2, 2])

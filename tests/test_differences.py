@@ -36,7 +36,8 @@ def test_nearest_references_match_brute_force(seed):
     k = int(rng.integers(1, 6))
     refs, gap = D.nearest_references(pid, on, off, k)
     ref_bf, gap_bf = brute_force_references(pid, on, off, k)
-    assert refs.shape == (on.sum(), k) and refs.dtype == np.int64
+    # compact run indices: int32 for runs below 2^31 shots
+    assert refs.shape == (on.sum(), k) and refs.dtype == np.int32
     np.testing.assert_array_equal(gap, gap_bf)
     # the set of distances must agree (ties between equally distant shots may pick either)
     d = np.sort(np.abs(pid[refs] - pid[on][:, None]), axis=1)
@@ -44,6 +45,20 @@ def test_nearest_references_match_brute_force(seed):
     np.testing.assert_array_equal(d, d_bf)
     assert np.all(off[refs])  # only usable off shots
     assert all(len(set(r)) == k for r in refs)  # no shot twice
+
+
+def test_nearest_references_in_blocks_equal_one_block(monkeypatch):
+    rng = np.random.default_rng(11)
+    n = 2000
+    pid = np.cumsum(rng.integers(1, 5, n))
+    off = rng.random(n) < 0.3
+    whole = D.nearest_references(pid, ~off, off, 3)
+    monkeypatch.setattr(D, "REFERENCE_BLOCK", 37)  # many blocks, one ending inside a run of on shots
+    blocked = D.nearest_references(pid, ~off, off, 3)
+    np.testing.assert_array_equal(blocked[0], whole[0])
+    np.testing.assert_array_equal(blocked[1], whole[1])
+    ref_bf, gap_bf = brute_force_references(pid, ~off, off, 3)
+    np.testing.assert_array_equal(blocked[1], gap_bf)
 
 
 def test_references_at_the_run_ends_and_too_few():

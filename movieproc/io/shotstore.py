@@ -21,13 +21,41 @@ settings that produced the store.
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from . import store
 from .runfile import SHOT_FIELDS
+
+
+#: Chunks per worker handed to the scheduler at once when streaming: enough to keep every
+#: worker busy, few enough that the chunks' results in flight stay small whatever the run length.
+CHUNKS_PER_WORKER = 4
+
+
+def batches(ranges, workers):
+    """Consecutive groups of ``CHUNKS_PER_WORKER * workers`` chunk ranges.
+
+    A stage that maps chunks and reduces their results takes one group at a
+    time, so only one group's results are held at once.
+
+    Parameters
+    ----------
+    ranges : list of (int, int)
+        Chunk ranges (:func:`movieproc.parallel.chunk_ranges`).
+    workers : int
+        Workers of the scheduler.
+
+    Returns
+    -------
+    list of list of (int, int)
+    """
+    size = CHUNKS_PER_WORKER * max(1, int(workers))
+    return [ranges[a:a + size] for a in range(0, len(ranges), size)]
 
 
 def file_checksum(path, algorithm: str = "sha256") -> str:
@@ -76,6 +104,49 @@ def create(path, q, table, chunk_shots, curve_arrays=None, attrs=None):
     return group
 
 
+class ShotTable(Mapping):
+    """The shot table of a store, read one field at a time on first use.
+
+    A stage that needs two fields of a 10-million-shot run reads those two
+    (80 MB each as int64/float64), not all eight. Behaves as a read-only dict
+    of str -> ndarray (N,).
+
+    Parameters
+    ----------
+    group : zarr.Group
+        The shots store.
+    names : list of str
+        Fields present in the store.
+    """
+
+    def __init__(self, group, names):
+        self._group = group
+        self._names = list(names)
+        self._cache: dict = {}
+
+    def __getitem__(self, name):
+        if name not in self._names:
+            raise KeyError(name)
+        if name not in self._cache:
+            self._cache[name] = self._group[name][...]
+        return self._cache[name]
+
+    def __iter__(self):
+        return iter(self._names)
+
+    def __len__(self):
+        return len(self._names)
+
+    @property
+    def n_shots(self) -> int:
+        """Shots in the run, from the stored shape (reads no data)."""
+        return int(self._group["pulse_id"].shape[0])
+
+    def drop(self, name):
+        """Forget a field read earlier (it is read again on the next use)."""
+        self._cache.pop(name, None)
+
+
 @dataclass
 class ShotStore:
     """Read access to a shots store.
@@ -85,20 +156,21 @@ class ShotStore:
     path : Path
     group : zarr.Group
     q : ndarray (nq,) float64, 1/Å
-    table : dict of str -> ndarray (N,)
+    table : ShotTable
+        The shot table, str -> ndarray (N,), fields read on first use.
     chunk : int
         Shots per stored chunk: the natural unit of streaming.
     """
 
     path: Path
-    group: object
+    group: Any
     q: np.ndarray
-    table: dict
+    table: ShotTable
     chunk: int
 
     @property
     def n_shots(self) -> int:
-        return len(self.table["pulse_id"])
+        return self.table.n_shots
 
     def curves(self, start: int, stop: int, name: str = "curves") -> np.ndarray:
         """Per-shot curves of shots [start, stop), float32 (n, nq)."""
@@ -120,7 +192,7 @@ def open_shots(path) -> ShotStore:
     path = Path(path)
     group = store.open_group(path, "shots store")
     q = store.read(group, "q", path)
-    table = {name: group[name][...] for name in SHOT_FIELDS if name in group}
+    table = ShotTable(group, [name for name in SHOT_FIELDS if name in group])
     if "curves" not in group:
         from ..errors import InputError
 

@@ -137,7 +137,8 @@ def assign_bins(delay, edges):
 
     Returns
     -------
-    ndarray (N,) int64
+    ndarray (N,) int32
+        Compact: a bin count never approaches 2^31.
     """
     delay = np.asarray(delay, float)
     edges = np.asarray(edges, float)
@@ -145,7 +146,7 @@ def assign_bins(delay, edges):
     idx[delay == edges[-1]] = edges.size - 2  # last bin is closed on the right
     bad = ~np.isfinite(delay) | (idx < 0) | (idx > edges.size - 2)
     idx[bad] = -1
-    return idx.astype(np.int64)
+    return idx.astype(np.int32)
 
 
 @dataclass
@@ -155,7 +156,7 @@ class DelayBins:
     Attributes
     ----------
     edges : ndarray (nbins + 1,), ps
-    index : ndarray (N,) int64, bin of each shot (-1: not binned)
+    index : ndarray (N,) int32, bin of each shot (-1: not binned)
     count : ndarray (nbins,) int64
     mean : ndarray (nbins,) float64, mean delay of the shots in each bin, ps (NaN if empty)
     std : ndarray (nbins,) float64, spread (standard deviation) of the delays, ps

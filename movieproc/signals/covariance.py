@@ -31,7 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, sparse
 
-__all__ = ["reference_use_counts", "bin_coefficient_overlap", "bin_correlation", "check_correlation",
+__all__ = ["reference_use_counts", "reference_gram", "bin_coefficient_overlap", "overlap_from_gram",
+           "bin_correlation", "check_correlation",
            "cholesky_correlation", "whiten", "decorrelate",
            "bootstrap_weights", "BootstrapChunk", "BootstrapSums", "bootstrap_chunk", "bootstrap_replicates",
            "replicate_correlation"]
@@ -45,6 +46,10 @@ CORRELATION_TOLERANCE = 1e-8
 
 #: Rows of the (replicate, shot) Poisson weights drawn at once (bounds the int64 temporary).
 WEIGHT_ROWS_PER_DRAW = 16
+
+#: Pump-on shots whose reference uses are counted at once by :func:`reference_gram`
+#: (bounds its temporaries to some tens of MB whatever the run length).
+GRAM_BLOCK = 1 << 16
 
 
 # ----------------------------------------------------------------------------- analytic covariance
@@ -64,7 +69,7 @@ def _check_bins_refs(bin_index, refs, nbins):
                          f"(largest {int(bin_index.max()) if bin_index.size else None})")
     if refs.size and int(refs.min()) < 0:
         raise ValueError("refs must be shot indices (>= 0)")
-    return bin_index.astype(np.int64), refs.astype(np.int64), int(nbins)
+    return bin_index, refs, int(nbins)
 
 
 def reference_use_counts(bin_index, refs, nbins):
@@ -90,11 +95,81 @@ def reference_use_counts(bin_index, refs, nbins):
     bin_index, refs, nbins = _check_bins_refs(bin_index, refs, nbins)
     k = refs.shape[1]
     ok = bin_index >= 0
-    b = np.repeat(bin_index[ok], k)
+    b = np.repeat(bin_index[ok].astype(np.int64), k)
     ref_shots, col = np.unique(refs[ok].ravel(), return_inverse=True)
     U = sparse.csr_matrix((np.ones(b.size), (b, col.ravel())), shape=(nbins, ref_shots.size))
     U.sum_duplicates()
     return U, ref_shots
+
+
+def _block_cuts(bin_index, refs, block):
+    """For each block of pump-on shots, the smallest reference used by binned shots of any later block."""
+    big = np.iinfo(np.int64).max
+    lows = []
+    for a in range(0, bin_index.size, block):
+        r = refs[a:a + block][bin_index[a:a + block] >= 0]
+        lows.append(int(r.min()) if r.size else big)
+    later = np.minimum.accumulate(np.array(lows[::-1] + [big], np.int64))[::-1]
+    return later[1:]
+
+
+def _add_gram(gram, keys, counts, nbins):
+    """gram += U U^T for the (reference, bin) use counts given as keys ref * nbins + bin."""
+    if keys.size == 0:
+        return
+    ref, col = np.unique(keys // nbins, return_inverse=True)
+    use = sparse.csr_matrix((counts.astype(float), (keys % nbins, np.ravel(col))), shape=(nbins, ref.size))
+    gram += (use @ use.T).toarray()
+
+
+def reference_gram(bin_index, refs, nbins, block=GRAM_BLOCK):
+    """G = U U^T of the reference use counts (:func:`reference_use_counts`) and the bin counts, streamed.
+
+    ``G_bc = sum_j u_bj u_cj`` over pump-off shots j. The pump-on shots are
+    taken ``block`` at a time; a reference's uses are added to G once no
+    later block uses it (references are the nearest off shots in pulse id, so
+    only a few uses wait for the next block). Memory is bounded by the block,
+    not by the run.
+
+    Parameters
+    ----------
+    bin_index : array_like (n_on,) int
+        Bin of each pump-on shot (-1: not binned, ignored).
+    refs : array_like (n_on, k) int
+        Run indices of each pump-on shot's references.
+    nbins : int
+        Number of delay bins.
+    block : int
+        Pump-on shots per block (> 0).
+
+    Returns
+    -------
+    gram : ndarray (nbins, nbins) float64
+        Integer-valued, symmetric.
+    n : ndarray (nbins,) float64
+        Pump-on shots per bin.
+    """
+    bin_index, refs, nbins = _check_bins_refs(bin_index, refs, nbins)
+    if int(block) < 1:
+        raise ValueError(f"block must be a positive number of shots, got {block}")
+    k = refs.shape[1]
+    gram = np.zeros((nbins, nbins))
+    n = np.zeros(nbins)
+    carry_keys, carry_counts = np.zeros(0, np.int64), np.zeros(0, np.int64)
+    for c, cut in enumerate(_block_cuts(bin_index, refs, int(block))):
+        sl = slice(c * int(block), (c + 1) * int(block))
+        ok = bin_index[sl] >= 0
+        b = bin_index[sl][ok].astype(np.int64)
+        n += np.bincount(b, minlength=nbins)
+        keys = refs[sl][ok].astype(np.int64) * nbins + np.repeat(b, k).reshape(-1, k)
+        keys, inverse = np.unique(np.concatenate([carry_keys, keys.ravel()]), return_inverse=True)
+        counts = np.bincount(np.ravel(inverse), np.concatenate([carry_counts, np.ones(b.size * k, np.int64)]),
+                             keys.size).astype(np.int64)
+        done = keys // nbins < cut
+        _add_gram(gram, keys[done], counts[done], nbins)
+        carry_keys, carry_counts = keys[~done], counts[~done]
+    _add_gram(gram, carry_keys, carry_counts, nbins)
+    return gram, n
 
 
 def bin_coefficient_overlap(bin_index, refs, nbins):
@@ -131,17 +206,24 @@ def bin_coefficient_overlap(bin_index, refs, nbins):
 
     Notes
     -----
-    Memory is linear in the number of shots: the (bin, reference) use counts
-    are a sparse matrix U and ``M = diag(1/n) + D U U^T D / k^2`` with
-    ``D = diag(1/n)``.
+    ``M = diag(1/n) + D U U^T D / k^2`` with ``D = diag(1/n)`` and U the
+    (bin, reference) use counts; U U^T is streamed (:func:`reference_gram`),
+    so memory is bounded whatever the number of shots.
     """
-    bin_index, refs, nbins = _check_bins_refs(bin_index, refs, nbins)
-    k = refs.shape[1]
-    U, _ = reference_use_counts(bin_index, refs, nbins)
-    n = np.bincount(bin_index[bin_index >= 0], minlength=nbins).astype(float)
+    gram, n = reference_gram(bin_index, refs, nbins)
+    return overlap_from_gram(gram, n, np.shape(refs)[1])
+
+
+def overlap_from_gram(gram, n, k):
+    """:func:`bin_coefficient_overlap` from ``(gram, n)`` of :func:`reference_gram` and k references per shot.
+
+    Returns
+    -------
+    ndarray (nbins, nbins) float64, 1/shots.
+    """
+    n = np.asarray(n, float)
     inv_n = np.where(n > 0, 1.0 / np.maximum(n, 1.0), 0.0)
-    shared = np.asarray((U @ U.T).todense(), dtype=float)
-    return np.diag(inv_n) + shared * np.outer(inv_n, inv_n) / (k * k)
+    return np.diag(inv_n) + np.asarray(gram, float) * np.outer(inv_n, inv_n) / (k * k)
 
 
 def bin_correlation(M):
@@ -337,6 +419,8 @@ def bootstrap_weights(rng, n_boot, n_shots):
     """
     if not isinstance(rng, np.random.Generator):
         raise TypeError(f"rng must be a seeded numpy.random.Generator, got {type(rng).__name__}")
+    if int(n_boot) < 0:
+        raise ValueError(f"n_boot must be a number of replicates >= 0, got {n_boot}")
     out = np.empty((int(n_boot), int(n_shots)), np.uint8)
     for a in range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW):
         rows = out[a:a + WEIGHT_ROWS_PER_DRAW]

@@ -17,7 +17,16 @@ import numpy as np
 
 from ..errors import DataError
 from ..shots.binning import BinSums, accumulate
-from .bootstrap import replicate_sums
+
+
+#: Pump-on shots whose candidate references are ranked at once: bounds the (block, 2k)
+#: temporaries of :func:`nearest_references` to a few tens of MB whatever the run length.
+REFERENCE_BLOCK = 1 << 16
+
+
+def index_dtype(n):
+    """Smallest of int32/int64 that holds run indices below ``n`` (int32 for runs under 2^31 shots)."""
+    return np.int32 if int(n) < np.iinfo(np.int32).max else np.int64
 
 
 def nearest_references(pulse_id, on, off, k):
@@ -36,7 +45,7 @@ def nearest_references(pulse_id, on, off, k):
 
     Returns
     -------
-    refs : ndarray (n_on, k) int64
+    refs : ndarray (n_on, k) int32 (int64 for runs of 2^31 shots or more)
         Shot indices (into the run) of each on shot's references, ordered by
         distance; on shots are in run order.
     gap : ndarray (n_on,) int64
@@ -46,6 +55,11 @@ def nearest_references(pulse_id, on, off, k):
     ------
     DataError
         If there are fewer than ``k`` usable pump-off shots.
+
+    Notes
+    -----
+    The on shots are ranked in blocks of ``REFERENCE_BLOCK``, so the memory
+    beyond the result is bounded whatever the run length.
     """
     pid = np.asarray(pulse_id, np.int64)
     on_idx = np.flatnonzero(on)
@@ -54,17 +68,21 @@ def nearest_references(pulse_id, on, off, k):
         raise DataError(f"{off_idx.size} usable pump-off shots; each pump-on shot needs {k} references "
                         "(check shots/pump_on and the selection cuts, or ask for fewer references)")
     off_pid = pid[off_idx]
-    pos = np.searchsorted(off_pid, pid[on_idx])
-    cand = pos[:, None] + np.arange(-k, k)[None, :]
-    valid = (cand >= 0) & (cand < off_idx.size)
-    cand_c = np.clip(cand, 0, off_idx.size - 1)
-    dist = np.abs(off_pid[cand_c] - pid[on_idx][:, None]).astype(float)
-    dist[~valid] = np.inf
-    order = np.argsort(dist, axis=1, kind="stable")[:, :k]
-    pick = np.take_along_axis(cand_c, order, axis=1)
-    refs = off_idx[pick]
-    gap = np.take_along_axis(dist, order, axis=1).max(axis=1).astype(np.int64)
-    return refs.astype(np.int64), gap
+    dtype = index_dtype(pid.size)
+    refs = np.empty((on_idx.size, k), dtype)
+    gap = np.empty(on_idx.size, np.int64)
+    for a in range(0, on_idx.size, REFERENCE_BLOCK):
+        on_pid = pid[on_idx[a:a + REFERENCE_BLOCK]]
+        pos = np.searchsorted(off_pid, on_pid)
+        cand = pos[:, None] + np.arange(-k, k)[None, :]
+        valid = (cand >= 0) & (cand < off_idx.size)
+        np.clip(cand, 0, off_idx.size - 1, out=cand)
+        dist = np.abs(off_pid[cand] - on_pid[:, None]).astype(float)
+        dist[~valid] = np.inf
+        order = np.argsort(dist, axis=1, kind="stable")[:, :k]
+        refs[a:a + REFERENCE_BLOCK] = off_idx[np.take_along_axis(cand, order, axis=1)]
+        gap[a:a + REFERENCE_BLOCK] = np.take_along_axis(dist, order, axis=1).max(axis=1)
+    return refs, gap
 
 
 def shared_reference_factor(bin_index, refs, nbins):
@@ -87,18 +105,30 @@ def shared_reference_factor(bin_index, refs, nbins):
     -------
     ndarray (nbins,) float64 (NaN for empty bins)
     """
-    bin_index = np.asarray(bin_index, np.int64)
-    refs = np.asarray(refs, np.int64)
-    k = refs.shape[1]
-    ok = bin_index >= 0
-    b = np.repeat(bin_index[ok], k)
-    j = refs[ok].ravel()
-    pairs = np.unique(np.stack([b, j]), axis=1, return_counts=True)
-    (bb, _), u = pairs
-    n = np.bincount(bin_index[ok], minlength=nbins).astype(float)
-    s = np.bincount(bb, weights=u.astype(float) ** 2, minlength=nbins)
+    from .covariance import reference_gram
+
+    gram, n = reference_gram(bin_index, refs, nbins)
+    return shared_factor_from_gram(gram, n, np.shape(refs)[1])
+
+
+def shared_factor_from_gram(gram, n, k):
+    """:func:`shared_reference_factor` from ``(gram, n)`` of :func:`movieproc.signals.covariance.reference_gram`.
+
+    Parameters
+    ----------
+    gram : ndarray (nbins, nbins)
+        Reference use-count products U U^T.
+    n : ndarray (nbins,)
+        Pump-on shots per bin.
+    k : int
+        References per pump-on shot.
+
+    Returns
+    -------
+    ndarray (nbins,) float64 (NaN for empty bins)
+    """
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(n > 0, s / (k * k * n), np.nan)
+        return np.where(n > 0, np.diag(gram) / (k * k * n), np.nan)
 
 
 def bin_errors(variance, count, k, shared):
@@ -139,26 +169,18 @@ class DifferenceSums:
     difference, on, reference : BinSums
         Of the per-shot differences, the pump-on curves and the reference
         means, (nbins, nq).
-    replicate_weights : ndarray (R, nbins) float64
-        Bootstrap replicates' pump-on weight per bin (R = 0 without bootstrap).
-    replicate_sums : ndarray (R, nbins, nq) float64
-        Bootstrap replicates' weighted sums of the differences.
     """
 
     difference: BinSums
     on: BinSums
     reference: BinSums
-    replicate_weights: np.ndarray
-    replicate_sums: np.ndarray
 
     def __add__(self, other: "DifferenceSums") -> "DifferenceSums":
         return DifferenceSums(self.difference + other.difference, self.on + other.on,
-                              self.reference + other.reference, self.replicate_weights + other.replicate_weights,
-                              self.replicate_sums + other.replicate_sums)
+                              self.reference + other.reference)
 
 
-def difference_sums(bin_index, on_curves, reference_curves, nbins, on_weights=None,
-                    reference_weights=None) -> DifferenceSums:
+def difference_sums(bin_index, on_curves, reference_curves, nbins) -> DifferenceSums:
     """Per-bin sums for a chunk of pump-on shots, each referenced to the mean of its k references.
 
     Parameters
@@ -170,9 +192,6 @@ def difference_sums(bin_index, on_curves, reference_curves, nbins, on_weights=No
     reference_curves : ndarray (n, k, nq)
         Normalized curves of each shot's references (:func:`nearest_references`).
     nbins : int
-    on_weights, reference_weights : ndarray (R, n) and (R, n, k), optional
-        Bootstrap weights (:func:`movieproc.signals.bootstrap.poisson_weights`
-        of these shots); default no replicates.
 
     Returns
     -------
@@ -180,10 +199,5 @@ def difference_sums(bin_index, on_curves, reference_curves, nbins, on_weights=No
     """
     reference = np.asarray(reference_curves).mean(axis=1, dtype=np.float64)
     difference = on_curves - reference
-    nq = reference.shape[1]
-    if on_weights is None or len(on_weights) == 0:
-        weights, sums = np.zeros((0, nbins)), np.zeros((0, nbins, nq))
-    else:
-        weights, sums = replicate_sums(bin_index, on_weights, reference_weights, on_curves, reference_curves, nbins)
     return DifferenceSums(accumulate(bin_index, difference, nbins), accumulate(bin_index, on_curves, nbins),
-                          accumulate(bin_index, reference, nbins), weights, sums)
+                          accumulate(bin_index, reference, nbins))

@@ -22,7 +22,7 @@ CONFIG_KEYS = {"mode": "binning.mode", "width": "binning.width_ps", "start": "bi
 def run(inputs: dict, out: Path, config: dict) -> None:
     """Assign kept pump-on shots to delay bins.
 
-    Writes ``out`` (zarr): ``edges`` (edge) ps, ``index`` (shot) int64 bin of
+    Writes ``out`` (zarr): ``edges`` (edge) ps, ``index`` (shot) int32 bin of
     each shot (-1: pump-off, dropped, no delay or outside the bins),
     ``n_shots``, ``delay_mean``, ``delay_spread`` (bin).
 
@@ -39,13 +39,14 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     warnings = Warnings("bin", log)
     shots = shotstore.open_shots(inputs["shots"])
     keep = store.read(store.open_group(inputs["selection"], "selection"), "keep", inputs["selection"])
-    delay = store.read(store.open_group(inputs["delays"], "delays"), "delay", inputs["delays"])
     use = keep & shots.table["pump_on"]
+    del keep
+    delay = store.read(store.open_group(inputs["delays"], "delays"), "delay", inputs["delays"])[use]
     with config_errors(CONFIG_KEYS, config):
-        edges = make_edges(delay[use], binning["mode"], width=binning.get("width_ps"), start=binning.get("start_ps"),
+        edges = make_edges(delay, binning["mode"], width=binning.get("width_ps"), start=binning.get("start_ps"),
                            stop=binning.get("stop_ps"), count=binning.get("count"), edges=binning.get("edges_ps"))
-    bins = bin_delays(delay[use], edges)
-    index = np.full(shots.n_shots, -1, np.int64)
+    bins = bin_delays(delay, edges)
+    index = np.full(shots.n_shots, -1, np.int32)
     index[np.flatnonzero(use)] = bins.index
     if np.all(bins.count == 0):
         raise DataError(f"no kept pump-on shot falls inside the bins {edges[0]:.4g}..{edges[-1]:.4g} ps; "

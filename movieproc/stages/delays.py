@@ -19,6 +19,8 @@ log = logging.getLogger("movieproc.time")
 #: Core parameters set from the config, and their config keys.
 CONFIG_KEYS = {"sign": "timing.sign", "calibration_fs": "timing.calibration_fs",
                "mode": "differences.normalization", "q_range": "differences.norm_q_range"}
+#: Shots whose corrected delays are computed at once (bounds the float64 temporaries).
+BLOCK_SHOTS = 1 << 20
 #: A timing-tool correction spread above this (fs rms) is far beyond any set-up's jitter
 #: (tens to a few hundred fs): most likely a wrong calibration or edge unit.
 SUSPECT_CORRECTION_RMS_FS = 1000.0
@@ -47,13 +49,19 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     timing = config["timing"]
     warnings = Warnings("time", log)
     table = shotstore.open_shots(inputs["shots"]).table
+    stage_delay, edge = table["stage_delay"], table["timing_edge"]
+    delay = np.empty(stage_delay.size)
     with config_errors(CONFIG_KEYS, config):
-        delay = corrected_delay(table["stage_delay"], table["timing_edge"], timing["calibration_fs"],
-                                timing["time_zero_ps"], timing["sign"], timing["edge_at_time_zero_px"],
-                                timing["use_timing_tool"])
-    correction = delay - (table["stage_delay"] - timing["time_zero_ps"])
+        for a in range(0, delay.size, BLOCK_SHOTS):  # elementwise: blocks bound the temporaries
+            delay[a:a + BLOCK_SHOTS] = corrected_delay(stage_delay[a:a + BLOCK_SHOTS], edge[a:a + BLOCK_SHOTS],
+                                                       timing["calibration_fs"], timing["time_zero_ps"],
+                                                       timing["sign"], timing["edge_at_time_zero_px"],
+                                                       timing["use_timing_tool"])
+    del edge
+    correction = (delay - (stage_delay - timing["time_zero_ps"])).astype(np.float32)
+    del stage_delay
     finite = np.isfinite(correction)
-    rms = float(np.std(correction[finite]) * FS_PER_PS) if finite.any() else float("nan")
+    rms = float(np.std(correction[finite], dtype=np.float64) * FS_PER_PS) if finite.any() else float("nan")
     log.info("corrected delays: %d shots, %d without a timing correction; correction rms %.1f fs",
              delay.size, int((~finite).sum()), rms)
     if timing["use_timing_tool"] and finite.any() and rms > SUSPECT_CORRECTION_RMS_FS:
@@ -65,7 +73,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
                                   "convention": "delay = stage_delay - time_zero + sign * (P(edge) - P(edge0)) / 1000; "
                                                 "positive delay: probe after pump"})
         store.write_array(g, "delay", delay, ["shot"], units="ps")
-        store.write_array(g, "correction", correction * FS_PER_PS, ["shot"], units="fs")
+        store.write_array(g, "correction", correction * np.float32(FS_PER_PS), ["shot"], units="fs")
 
 
 def check_sign(shots_path, selection_path, config: dict, window_ps=1.0):

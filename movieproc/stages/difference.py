@@ -3,15 +3,18 @@
 Streams the shots store chunk by chunk: normalizes each curve, references each
 binned pump-on shot to the mean of its k nearest kept pump-off shots, and
 accumulates per-bin float64 sums (:func:`movieproc.signals.differences.difference_sums`),
-with Poisson-bootstrap replicates when asked (:mod:`movieproc.signals.bootstrap`).
-Never holds all shots' curves in memory.
+with Poisson-bootstrap sums when asked (:func:`movieproc.signals.covariance.bootstrap_chunk`).
+Chunks are reduced a few at a time (:func:`movieproc.io.shotstore.batches`), so
+memory is bounded by the chunk size, not by the run: what grows with the run is
+the reference indices (int32, k per pump-on shot) and the shot table fields used.
+Also writes the between-bin correlation of the differences caused by shared
+pump-off references (:func:`movieproc.signals.covariance.bin_correlation`).
 """
 
 from __future__ import annotations
 
 import logging
-from functools import partial, reduce
-from operator import add
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -19,8 +22,8 @@ import numpy as np
 from ..errors import DataError
 from ..io import shotstore, store
 from ..parallel import chunk_ranges, map_ranges
-from ..signals import bootstrap
-from ..signals.differences import bin_errors, difference_sums, nearest_references, shared_reference_factor
+from ..signals import covariance
+from ..signals.differences import bin_errors, difference_sums, nearest_references, shared_factor_from_gram
 from ..signals.normalize import normalize
 from .common import Warnings, config_errors, now
 
@@ -28,7 +31,7 @@ log = logging.getLogger("movieproc.difference")
 
 #: Core parameters set from the config, and their config keys.
 CONFIG_KEYS = {"k": "differences.references", "mode": "differences.normalization",
-               "q_range": "differences.norm_q_range", "replicates": "differences.bootstrap",
+               "q_range": "differences.norm_q_range", "n_boot": "differences.bootstrap",
                "chunk": "compute.chunk_shots", "scheduler": "compute.scheduler"}
 #: Units of the differences per normalization mode.
 UNITS = {"window": "fraction of the normalization-window mean", "total": "fraction of the mean over q",
@@ -36,16 +39,31 @@ UNITS = {"window": "fraction of the normalization-window mean", "total": "fracti
 
 
 def _chunk_sums(start, stop, shots, on_idx, refs, on_bin, nbins, differences, weights):
-    """Sums of pump-on shots on_idx[start:stop]: their curves and their references' read once."""
+    """Sums of pump-on shots on_idx[start:stop] (and their bootstrap sums): curves read once."""
     idx, ref = on_idx[start:stop], refs[start:stop]
     rows = np.unique(np.concatenate([idx, ref.ravel()]))
     curves = normalize(shots.rows(rows), shots.q, differences["normalization"], differences["norm_q_range"])
-    return difference_sums(on_bin[start:stop], curves[np.searchsorted(rows, idx)],
-                           curves[np.searchsorted(rows, ref)], nbins, weights[:, idx], weights[:, ref])
+    sums = difference_sums(on_bin[start:stop], curves[np.searchsorted(rows, idx)],
+                           curves[np.searchsorted(rows, ref)], nbins)
+    boot = None if weights is None else covariance.bootstrap_chunk(weights, idx, on_bin[start:stop], ref, rows,
+                                                                   curves)
+    return sums, boot
+
+
+def _reduce(work, n_on, compute, boot):
+    """Map ``work`` over chunks of the pump-on shots, a batch at a time; bootstrap sums added into ``boot``."""
+    total = None
+    for batch in shotstore.batches(chunk_ranges(n_on, compute["chunk_shots"]), compute["workers"]):
+        for sums, part in map_ranges(work, batch, compute["workers"], compute["scheduler"], compute["progress"],
+                                     "difference"):
+            total = sums if total is None else total + sums
+            if part is not None:
+                boot.add(part)
+    return total
 
 
 def _references(shots, keep, index, differences, warnings):
-    """Each binned pump-on shot's k nearest kept pump-off shots."""
+    """Run indices of the binned pump-on shots and their k nearest kept pump-off shots."""
     on = index >= 0
     off = keep & ~shots.table["pump_on"]
     k = differences["references"]
@@ -58,11 +76,11 @@ def _references(shots, keep, index, differences, warnings):
         if far:
             warnings.add(f"{far} pump-on shots have a reference more than {differences['max_reference_gap']} "
                          "pulse ids away")
-    return np.flatnonzero(on), refs
+    return np.flatnonzero(on).astype(refs.dtype), refs
 
 
 def run(inputs: dict, out: Path, config: dict) -> None:
-    """Write ``binned.zarr``: diff, diff_err, on_mean, off_mean per (delay, q).
+    """Write ``binned.zarr``: diff, diff_err, on_mean, off_mean per (delay, q), delay_correlation.
 
     Parameters
     ----------
@@ -73,31 +91,39 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     config : dict
         Sections ``differences``, ``binning`` (its ``min_shots``) and ``compute``.
     """
-    differences, compute, min_shots = config["differences"], config["compute"], config["binning"]["min_shots"]
+    differences, compute, n_boot = config["differences"], config["compute"], config["differences"]["bootstrap"]
     warnings = Warnings("difference", log)
     shots = shotstore.open_shots(inputs["shots"])
     keep = store.read(store.open_group(inputs["selection"], "selection"), "keep", inputs["selection"])
     bins = store.open_group(inputs["bins"], "bins")
     index, edges = store.read(bins, "index", inputs["bins"]), store.read(bins, "edges", inputs["bins"])
-    nbins = edges.size - 1
+    nbins, k = edges.size - 1, differences["references"]
     with config_errors(CONFIG_KEYS, config):
         on_idx, refs = _references(shots, keep, index, differences, warnings)
-        weights = bootstrap.poisson_weights(differences["bootstrap"], shots.n_shots, differences["seed"])
-        work = partial(_chunk_sums, shots=shots, on_idx=on_idx, refs=refs, on_bin=index[on_idx], nbins=nbins,
+        on_bin = index[on_idx]
+        del keep, index
+        for name in ("pulse_id", "pump_on"):  # the largest fields, not needed beyond the references
+            shots.table.drop(name)
+        weights = covariance.bootstrap_weights(np.random.default_rng(differences["seed"]), n_boot,
+                                               shots.n_shots) if n_boot else None
+        boot = covariance.BootstrapSums.zeros(n_boot, nbins, shots.q.size) if n_boot else None
+        work = partial(_chunk_sums, shots=shots, on_idx=on_idx, refs=refs, on_bin=on_bin, nbins=nbins,
                        differences=differences, weights=weights)
-        sums = reduce(add, map_ranges(work, chunk_ranges(on_idx.size, compute["chunk_shots"]), compute["workers"],
-                                      compute["scheduler"], compute["progress"], "difference"))
-    shared = shared_reference_factor(index[on_idx], refs, nbins)
+        sums = _reduce(work, on_idx.size, compute, boot)
+    gram, n = covariance.reference_gram(on_bin, refs, nbins)
+    shared = shared_factor_from_gram(gram, n, k)
+    correlation = covariance.bin_correlation(covariance.overlap_from_gram(gram, n, k))
     count = sums.difference.count
-    difference_error = bin_errors(sums.difference.variance(), count, differences["references"], shared)
+    difference_error = bin_errors(sums.difference.variance(), count, k, shared)
     log.info("differences in %d bins from %d pump-on shots with %d references each; median relative error %.2e",
-             nbins, int(count.sum()), differences["references"],
+             nbins, int(count.sum()), k,
              float(np.nanmedian(difference_error)) if np.isfinite(difference_error).any() else float("nan"))
     with store.atomic_path(out) as tmp:
         g = store.new_group(tmp, {"differences": differences, "binning": bins.attrs.get("binning"), "written": now(),
                                   "warnings": list(bins.attrs.get("warnings", [])) + list(warnings),
-                                  "references_per_shot": differences["references"]})
-        _write(g, shots.q, bins, edges, shared, sums, difference_error, min_shots, differences)
+                                  "references_per_shot": k})
+        _write(g, shots.q, bins, edges, shared, sums, difference_error, config["binning"]["min_shots"], differences)
+        _write_covariance(g, correlation, boot, differences)
 
 
 def _write(g, q, bins, edges, shared, sums, difference_error, min_shots, differences):
@@ -118,9 +144,18 @@ def _write(g, q, bins, edges, shared, sums, difference_error, min_shots, differe
     store.write_array(g, "diff_err", difference_error.astype(np.float32), ["delay", "q"], units=units,
                       attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
     store.write_array(g, "on_mean", sums.on.mean().astype(np.float32), ["delay", "q"], units=units)
-    if differences["bootstrap"]:
-        replicates = bootstrap.replicate_means(sums.replicate_weights, sums.replicate_sums)
-        store.write_array(g, "diff_boot", replicates.astype(np.float32), ["replicate", "delay", "q"], units=units,
-                          attrs={"meaning": "diff of Poisson-bootstrap replicates over shots (pump-on and "
-                                            "reference shots reweighted together)", "seed": differences["seed"]})
     store.write_array(g, "off_mean", sums.reference.mean().astype(np.float32), ["delay", "q"], units=units)
+
+
+def _write_covariance(g, correlation, boot, differences):
+    """The between-bin correlation and, when asked, the bootstrap replicates."""
+    store.write_array(g, "delay_correlation", correlation, ["delay", "delay_other"], units="1",
+                      attrs={"meaning": "correlation between bins' differences caused by shared pump-off "
+                                        "references; Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc"})
+    if boot is not None:
+        replicates = covariance.bootstrap_replicates(boot)
+        store.write_array(g, "diff_boot", replicates.astype(np.float32), ["replicate", "delay", "q"],
+                          units=UNITS[differences["normalization"]],
+                          attrs={"meaning": "diff of Poisson-bootstrap replicates over shots (pump-on and "
+                                            "pump-off shots reweighted; ratio estimator per bin)",
+                                 "seed": differences["seed"]})

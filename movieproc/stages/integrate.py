@@ -48,7 +48,7 @@ from .common import Warnings, config_errors, now, versions
 log = logging.getLogger("movieproc.integrate")
 
 #: Frames read and integrated at once inside a task: about this many bytes.
-BLOCK_BYTES = 256 * 2**20
+BLOCK_BYTES = 64 * 2**20
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf", ".nxs")
 ORIGIN_NAMES = {energy.FROM_RUN: "run", energy.FROM_ELECTRON: "electron energy",
                 energy.FROM_CONFIG: "detector.photon_energy_kev"}

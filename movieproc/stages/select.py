@@ -35,26 +35,29 @@ def _block_scores(start, stop, shots, flags, normalization):
         return start, ok, np.full(0, np.nan)
     curves = normalize(shots.curves(start, stop)[ok], shots.q, normalization["normalization"],
                        normalization["norm_q_range"])
-    return start, ok, selection.block_scores(curves, shots.table["pump_on"][start + ok])
+    return start, ok.astype(np.int32), selection.block_scores(curves, shots.table["pump_on"][start + ok])
 
 
 def _flags(shots, sel, normalization, compute, warnings):
-    """Reason bits (shot) uint8 and the outlier scores (shot) float64."""
+    """Reason bits (shot) uint8 and the outlier scores (shot) float32."""
     table, n = shots.table, shots.n_shots
     flags = np.zeros(n, np.uint8)
     pe, tim, outliers = sel["pulse_energy"], sel["timing"], sel["outliers"]
     cut = selection.pulse_energy_flags(table["pulse_energy"], pe["min"], pe["max"], pe["min_fraction_of_median"])
     flags[cut] |= selection.REASONS["pulse_energy"]
+    del cut
+    table.drop("pulse_energy")  # not needed again here: frees 8 bytes per shot
     flags |= selection.timing_flags(table["timing_edge"], table.get("timing_amplitude"), tim["require_edge"],
                                     tim["min_amplitude"], tim["edge_range_px"])
     if tim["min_amplitude"] is not None and "timing_amplitude" not in table:
         warnings.add("selection.timing.min_amplitude is set but the run has no shots/timing_amplitude; cut not applied")
-    score = np.full(n, np.nan)
+    score = np.full(n, np.nan, np.float32)  # a robust z score: 7 digits are plenty
     if outliers["enabled"]:
         work = partial(_block_scores, shots=shots, flags=flags, normalization=normalization)
-        for start, ok, s in map_ranges(work, chunk_ranges(n, outliers["window"]), compute["workers"],
-                                       compute["scheduler"], compute["progress"], "select"):
-            score[start + ok] = s
+        for batch in shotstore.batches(chunk_ranges(n, outliers["window"]), compute["workers"]):
+            for start, ok, s in map_ranges(work, batch, compute["workers"], compute["scheduler"],
+                                           compute["progress"], "select"):
+                score[start + ok] = s
         flags[selection.robust_outliers(score, outliers["threshold"])] |= selection.REASONS["outlier"]
     return flags, score
 
