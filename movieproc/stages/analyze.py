@@ -303,12 +303,12 @@ def _svd(ncfg, data, solute, usable, use, arrays, warnings):
                                  noise_err=noise_err)
     for w in count.warnings:
         warnings.add(w)
-    u, s, vt = svd.svd(solute, weights=1.0 / data.err[use])
+    u, s, vt = count.u, count.s, count.vt  # the same weighted map as the count and its noise reference
     k = min(ncfg["max_components"], s.size)
     arrays.update(svd_values=s[:k], svd_noise=count.s_noise[:k], svd_u=_rows(u[:, :k], use), svd_v=vt[:k])
-    log.info("SVD: %d significant component(s) (values %s; noise %s)", count.n,
-             np.array2string(s[:k], precision=3), np.array2string(count.s_noise[:k], precision=3))
-    return int(count.n)
+    log.info("SVD: %s", count.decision)
+    return {"svd_components": int(count.n), "svd_threshold": count.threshold, "svd_decision": count.decision,
+            "svd_noise_source": count.noise_source, "svd_structured": [bool(b) for b in count.smooth[:k]]}
 
 
 def _rows(values, use):
@@ -467,15 +467,16 @@ def _array_attrs(name, result):
                    "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
                               "with differentials per K; normalization: dimensionless nuisance)"}
     elif name.startswith("svd_"):
-        meaning = {"meaning": "SVD of the solute difference weighted by 1 / diff_err (dimensionless)"}
+        meaning = {"meaning": "SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation "
+                              "of 1 / diff_err (dimensionless); svd_noise: noise maps of the same weighting; "
+                              "svd_smooth: 1 where both vectors pass the structure test"}
     return u, meaning
 
 
 def _write(out, q, delay, arrays, result, config, warnings):
     fit = result.get("fit")
     attrs = {"written": now(), "analysis_units": result["units"], "absolute_scale_factor": result["factor"],
-             "svd_components": result["svd_count"], "solvent_terms": result["names"],
-             "warnings": list(warnings)}
+             "solvent_terms": result["names"], "warnings": list(warnings), **result["svd_count"]}
     if fit is not None:
         attrs.update(_fit_attrs(fit, config))
     with store.atomic_path(out) as tmp:
