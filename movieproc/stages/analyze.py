@@ -469,7 +469,7 @@ def _array_attrs(name, result):
     elif name.startswith("svd_"):
         meaning = {"meaning": "SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation "
                               "of 1 / diff_err (dimensionless); svd_noise: noise maps of the same weighting; "
-                              "svd_smooth: 1 where both vectors pass the structure test"}
+                              "attrs svd_threshold, svd_structured, svd_decision: how the count was made"}
     return u, meaning
 
 
