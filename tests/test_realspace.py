@@ -35,7 +35,8 @@ def test_single_distance_closed_form():
     f = formfactors.form_factor(q, "Pt") * formfactors.form_factor(q, "Cl")
     dS = 2 * f * np.sin(q * d) / (q * d)
     got, kappa = realspace.sharpened_transform(q, dS, R, f, damping=k)
-    ref = R / (2 * d) * np.sqrt(1 / (np.pi * k)) * (np.exp(-((R - d) ** 2) / (4 * k)) - np.exp(-((R + d) ** 2) / (4 * k)))
+    ref = R / (2 * d) * np.sqrt(1 / (np.pi * k)) * (
+        np.exp(-((R - d) ** 2) / (4 * k)) - np.exp(-((R + d) ** 2) / (4 * k)))
     assert kappa == k
     np.testing.assert_allclose(got, ref, atol=1e-6 * ref.max())
     assert np.trapezoid(got, R) == pytest.approx(1.0, abs=1e-4)  # one pair
