@@ -128,7 +128,7 @@ def _population_panel(ax, curves, delay):
     ax.plot([], [], "o", ms=3, mfc="none", color="0.4", label="model at the bins (bin width included)")
     ax.axhline(0, color="0.7", lw=0.5)
     ax.set_ylabel(curves.ylabel, fontsize=8)
-    ax.legend(fontsize=7, loc="best")
+    ax.legend(fontsize=7, loc="center left")
 
 
 def _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units):
@@ -175,8 +175,8 @@ def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), 
         if kind == "population":
             _population_panel(ax, curves, delay)
             if params_text:
-                ax.text(0.01, 0.97, params_text, transform=ax.transAxes, va="top", fontsize=7, family="monospace",
-                        bbox=dict(facecolor="white", alpha=0.8, lw=0))
+                ax.text(0.6, 0.05, params_text, transform=ax.transAxes, va="bottom", ha="center", fontsize=7,
+                        family="monospace", bbox=dict(facecolor="white", alpha=0.8, lw=0))
         elif kind == "solvent":
             _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units)
         else:
@@ -254,8 +254,9 @@ def svd_summary(q, delay, values, noise, u, v, n_significant, threshold=None, st
         structured = np.asarray(structured, bool)[: len(values)]
         counted = (values > threshold) & structured
         rejected = (values > threshold) & ~structured
-        ax.semilogy(k[rejected], values[rejected], "x", color="C3", ms=8, mew=1.5,
-                    label="above threshold, vectors like noise: not counted")
+        if rejected.any():
+            ax.semilogy(k[rejected], values[rejected], "x", color="C3", ms=8, mew=1.5,
+                        label="above threshold, vectors like noise: not counted")
     ax.semilogy(k, values, "-", color="C0", lw=0.8)
     ax.semilogy(k[counted], values[counted], "o", color="C0", label="counted")
     ax.semilogy(k[~counted], values[~counted], "o", mfc="none", color="C0", label="not counted")
@@ -309,14 +310,17 @@ def realspace(r, delay, values, delays=None, title="", units="", info=None):
         ax.plot(r, values[i], color=c, lw=1.2, label=f"{delay[i]:.3g} ps")
     ax.axhline(0, color="0.6", lw=0.6)
     ax.set_xlabel("r (Å)")
-    ax.set_ylabel("ΔP(r): pairs gained − lost per Å" + (f" ({units})" if units else ""))
+    ax.set_ylabel("ΔP(r): pairs gained − lost per Å" + (f" ({units})" if units else "")
+                  + "\n(an a-b pair weighted f_a f_b / F)", fontsize=9)
     ax.legend(fontsize=8, ncols=2, title="delay", title_fontsize=8)
     sub = ""
     if info:
         lo, hi = info.get("q_range_invA", (np.nan, np.nan))
+        sigma = info.get("peak_sigma_A", np.nan)
         sub = (f"\nsharpened by {info.get('sharpening', '?')}; q {lo:.2g}-{hi:.2g} 1/Å; "
-               f"damping κ = {info.get('damping_A2', np.nan):.3g} Å²: "
-               f"peak σ = {info.get('peak_sigma_A', np.nan):.2f} Å")
+               f"damping κ = {info.get('damping_A2', np.nan):.3g} Å²\neach distance a Gaussian of σ = {sigma:.2f} Å: "
+               f"a change under ~{3.5 * sigma:.1f} Å is one −/+ pair\nwhose zero crossing (not its extrema) "
+               "marks the mean of the two distances")
     ax.set_title((title or "real-space difference") + sub, fontsize=9)
     return fig
 

@@ -123,11 +123,11 @@ def population_curves(attrs, delay, population):
     values = _evaluate(mode, fit_cfg, p, fine)
     names = (["excited state"] if mode == "trajectory"
              else _species_names(fit_cfg, model_cfg, attrs.get("fit_species") or []))
-    scale, ylabel = 1.0, "population (initial excited population = 1; the free curves carry the scale)"
+    scale, ylabel = 1.0, "population (initial excited = 1;\nthe free curves carry the scale)"
     if "alpha" in p:
         scale = p["alpha"]
         absolute = (cfg.get("scaling") or {}).get("mode") == "solute"
-        ylabel = ("fraction of solute molecules (alpha × population, absolute scale)" if absolute
-                  else "alpha × population (model units: alpha scales the model curves)")
+        ylabel = ("fraction of solute molecules\n(alpha × population, absolute scale)" if absolute
+                  else "alpha × population\n(model units: alpha scales the model curves)")
     return PopulationCurves(delay=fine, values=values * scale, at_bins=np.asarray(population, float) * scale,
                             names=names[: values.shape[1]], ylabel=ylabel)

@@ -297,9 +297,10 @@ def _realspace(rcfg, data, solute, use, arrays, units):
     arrays.update(solute_realspace=_rows(values, use), r=r)
     low, high = rcfg["q_range_invA"] or (float(data.q[0]), float(data.q[-1]))
     pairs = "pairs" if units == SCALE_UNITS else f"({units}) / e.u.^2"
-    return {"units": f"{pairs} / Å", "meaning": "change of the number of pairs per Å (gained > 0, lost < 0): "
-            "dP(r) = (r / pi) int q dS(q) / F(q) sin(q r) exp(-kappa q^2) dq", "sharpening": label,
-            "q_range_invA": [low, high], "damping_A2": kappa, "peak_sigma_A": realspace.peak_width(kappa)}
+    return {"units": f"{pairs} / Å", "meaning": "change of the number of pairs per Å (gained > 0, lost < 0), an a-b "
+            "pair weighted f_a f_b / F: dP(r) = (r / pi) int q dS(q) / F(q) sin(q r) exp(-kappa q^2) dq",
+            "sharpening": label, "q_range_invA": [low, high], "damping_A2": kappa,
+            "peak_sigma_A": realspace.peak_width(kappa)}
 
 
 
