@@ -7,6 +7,7 @@ bit is set. The counts per reason are what a user checks first after a run.
 from __future__ import annotations
 
 import numpy as np
+from scipy.stats import trim_mean
 
 #: Reason bits for dropping a shot.
 REASONS = {
@@ -154,8 +155,6 @@ def _half_means(d):
     The split is at the median amplitude along the group's trimmed mean; the sqrt(count)
     undoes the averaging, so each row has the single-shot noise.
     """
-    from scipy.stats import trim_mean
-
     mean = trim_mean(d, TRIM_FRACTION, axis=0)
     norm = np.linalg.norm(mean)
     if not norm > 0 or d.shape[0] < 2 * MIN_SHOTS_TO_SCORE:
