@@ -21,7 +21,7 @@ SCENARIO = ROOT / "demo_data" / "scenario.yaml"
 #: The config sections of the rules (workflow/rules/analysis.smk): a stage that reads
 #: any other section fails here with a KeyError.
 SCATTER_SECTIONS = ("model",)
-ANALYZE_SECTIONS = ("scaling", "solvent", "svd", "fit", "differences")
+ANALYZE_SECTIONS = ("scaling", "solvent", "svd", "realspace", "fit", "differences")
 
 
 def _sections(cfg, names):

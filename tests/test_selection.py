@@ -4,7 +4,7 @@ and the ``select`` stage's refusal of runs it cannot difference."""
 import numpy as np
 import pytest
 import zarr
-from scipy import stats
+from scipy import special, stats
 
 from conftest import leftovers
 from movieproc import config as C
@@ -119,3 +119,96 @@ def test_select_with_every_shot_cut_is_a_data_error(make_run, tmp_path):
     with pytest.raises(DataError, match="every one of the 240 shots was cut"):
         select.run({"shots": shots}, out, _config("selection.pulse_energy.min=1000"))
     assert not out.exists() and leftovers(tmp_path / "out") == []
+
+
+# ------------------------------------------------------------------ outliers do not follow a fast onset
+
+def _onset_run(seed=3):
+    """Shots of a run whose signal rises within 30 fs, with 100 fs timing jitter and 1 % distorted shots.
+
+    Stage steps of 120 shots (every third shot pump-off), three passes over the delays.
+    Signal: 5 % of the curve (five times the per-point noise) times an erf step of 30 fs rms,
+    plus a damped 0.4 ps vibration of another shape.
+    """
+    rng = np.random.default_rng(seed)
+    steps = np.array([-1.0, -0.5, -0.2, -0.1, -0.05, 0.0, 0.05, 0.1, 0.2, 0.3, 0.5, 1.0, 2.0, 5.0, 20.0])
+    n, nq = steps.size * 120 * 3, 150
+    q = np.linspace(0.5, 5.0, nq)
+    stage = steps[(np.arange(n) // 120) % steps.size]
+    on = np.arange(n) % 3 != 2
+    true = stage + 0.1 * rng.standard_normal(n)  # 100 fs rms jitter
+    base = 1 + np.exp(-((q - 2.0) / 0.6) ** 2)
+    rise = 0.5 * (1 + special.erf(true / (np.sqrt(2) * 0.03)))
+    t = np.clip(true, 0, None)
+    vib = np.sin(2 * np.pi * t / 0.4) * np.exp(-t / 0.8)
+    signal = 0.05 * base * (np.sin(2.2 * q)[None, :] + 0.5 * vib[:, None] * np.cos(3.1 * q)[None, :])
+    curves = base + (on * rise)[:, None] * signal + 0.01 * base * rng.standard_normal((n, nq))
+    bad = rng.random(n) < 0.01
+    curves[bad] *= 1 + 0.03 * np.cos(4.0 * q)  # distorted shots (jet instability)
+    return curves, on, stage, true, bad
+
+
+def _cut(curves, on, stage, window=1000, threshold=6.0, group=True):
+    scores = np.full(on.size, np.nan)
+    for start in range(0, on.size, window):
+        sl = slice(start, start + window)
+        scores[sl] = S.block_scores(curves[sl], on[sl], stage[sl] if group else None)
+    return S.robust_outliers(scores, threshold)
+
+
+def _two_proportion_z(cut, near, elsewhere):
+    """Pooled two-proportion z statistic: (p1 - p2) / sqrt(p (1 - p) (1/n1 + 1/n2)) (binomial counting errors)."""
+    n1, n2 = near.sum(), elsewhere.sum()
+    p1, p2 = cut[near].mean(), cut[elsewhere].mean()
+    p = (cut[near].sum() + cut[elsewhere].sum()) / (n1 + n2)
+    return (p1 - p2) / np.sqrt(p * (1 - p) * (1 / n1 + 1 / n2)), p1, p2
+
+
+def test_outlier_cut_does_not_follow_a_fast_onset():
+    curves, on, stage, true, bad = _onset_run()
+    cut = _cut(curves, on, stage)
+    near = on & (true > -0.2) & (true < 0.3)
+    elsewhere = on & ~near
+    z, p_near, p_else = _two_proportion_z(cut, near, elsewhere)
+    # equal cut fractions within counting error: |z| < 3 (two-sided p ~ 0.003 under the binomial null)
+    assert abs(z) < 3, (p_near, p_else, z)
+    # the cut is the injected distortion: nearly all found, few others (1 % injected)
+    assert cut[bad].mean() > 0.9
+    assert cut[~bad].mean() < 0.003
+
+
+def test_pump_on_median_reference_follows_the_onset():
+    # the same run scored against the block's pump-on median, the reference the cut above replaces: the
+    # signal's spread within a block makes the cut fractions near time zero and elsewhere differ by many
+    # counting errors (the statistic above can fail)
+    curves, on, stage, true, bad = _onset_run()
+    scores = np.full(on.size, np.nan)
+    for start in range(0, on.size, 1000):
+        sl = slice(start, start + 1000)
+        for state in (True, False):
+            rows = np.flatnonzero(on[sl] == state) + start
+            scores[rows] = S.outlier_scores(curves[rows])
+    cut = S.robust_outliers(scores, 6.0)
+    near = on & (true > -0.2) & (true < 0.3)
+    z, _, _ = _two_proportion_z(cut, near, on & ~near)
+    assert abs(z) > 5
+
+
+def test_signal_directions_hold_a_rare_signal_but_not_a_distorted_shot():
+    rng = np.random.default_rng(1)
+    q = np.linspace(0.5, 5, 120)
+    shape = np.sin(2 * q)
+    group = np.repeat([0.0, 1.0, 2.0], 40)
+    amp = np.where(group == 0, 0.0, rng.uniform(0, 3, group.size))  # no signal in group 0
+    d = amp[:, None] * shape + rng.standard_normal((group.size, q.size))
+    d[3] += 3 * shape  # a rare signal in group 0 (a jitter tail): in the span of the other groups' signal
+    d[5] += 20 * np.cos(4 * q)  # a distorted shot
+    basis = S.signal_directions(d, group)
+    np.testing.assert_allclose(basis @ basis.T, np.eye(basis.shape[0]), atol=1e-12)  # orthonormal
+    unit = shape / np.linalg.norm(shape)
+    assert np.linalg.norm(basis @ unit) > 0.99
+    # the distortion's part orthogonal to the signal shape is not in the span (noise-level overlap only)
+    other = np.cos(4 * q) - (np.cos(4 * q) @ unit) * unit
+    assert np.linalg.norm(basis @ (other / np.linalg.norm(other))) < 0.1
+    # noise alone gives no direction (all singular values under the noise edge)
+    assert S.signal_directions(rng.standard_normal((120, 120)), group).shape == (0, 120)

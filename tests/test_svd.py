@@ -150,3 +150,65 @@ def test_noise_rows_inside_the_window_among_usable_bins():
     rows, notes = msvd.noise_rows(delay, usable, (-1.5, -0.8))
     assert rows is None and "0 usable bins" in notes[0]
     assert msvd.noise_rows(delay, usable, None) == (None, [])
+
+
+# Delay grid of the demo run (config/config.yaml binning.edges_ps, bin centres): 0.05 ps steps from -0.4
+# to 1 ps, coarser later.
+FINE = np.concatenate([[-1.1, -0.55], np.arange(-0.375, 1.0, 0.05), [1.5, 2.5, 4.0, 7.0, 15.0, 30.0, 60.0]])
+
+
+def _errors(rng, shape):
+    """Errors sigma(q) / sqrt(n_shots(delay)) with a 5 % point-to-point scatter (errors estimated per bin)."""
+    n_shots = rng.integers(150, 400, shape[0])
+    sigma_q = 0.5 + (np.linspace(0, 1, shape[1])) ** 2
+    return np.outer(1 / np.sqrt(n_shots), sigma_q) * (1 + 0.05 * rng.standard_normal(shape))
+
+
+def test_damped_vibration_is_a_second_component():
+    rng = np.random.default_rng(21)
+    t = np.clip(FINE, 0, None)
+    on = (FINE > 0).astype(float)
+    population = np.exp(-t / 20.0) * on
+    vibration = np.cos(2 * np.pi * t / 0.4) * np.exp(-t / 0.8) * on  # 0.4 ps period, 0.8 ps damping time
+    b1 = np.sinc(Q * 2.8 / np.pi) - np.sinc(Q * 3.0 / np.pi)
+    b2 = np.exp(-((Q - 2.0) / 0.4) ** 2) - 0.5 * np.exp(-((Q - 3.0) / 0.3) ** 2)
+    err = _errors(rng, (FINE.size, Q.size))
+    w = msvd.separable_weights(err)
+    # weighted Frobenius norms 150 and 60: 4-10 times the noise edge sqrt(41) + sqrt(150) ~ 19
+    # (Marchenko-Pastur, from memory)
+    D = np.zeros(err.shape)
+    for c, b, amp in ((population, b1, 150.0), (vibration, b2, 60.0)):
+        term = np.outer(c, b)
+        D += amp * term / np.linalg.norm(term * w)
+    D += rng.standard_normal(D.shape) * err
+    res = msvd.count_components(D, err=err, rng=np.random.default_rng(3))
+    assert res.n == 2, res.decision
+    assert res.significant[1] and not res.significant[2]
+    # sampled at 8 points per period its temporal vector has autocorrelation near cos(2 pi / 8) = 0.71: a
+    # fixed smoothness level of 0.8 would have rejected it; the noise-relative level 3 / sqrt(41) = 0.47 does not
+    assert res.autocorr_u[1] < 0.8 and res.autocorr_u[1] > res.autocorr_min_u
+    assert "magnitude test decided" in res.decision
+
+
+def test_noise_free_rank_one_map_counts_one_with_the_noise_line_consistent():
+    rng = np.random.default_rng(22)
+    t = np.clip(FINE, 0, None)
+    c = np.exp(-t / 20.0) * (FINE > 0)
+    b = np.sinc(Q * 2.8 / np.pi) - np.sinc(Q * 3.0 / np.pi)
+    err = _errors(rng, (FINE.size, Q.size))
+    D = np.outer(c, b)
+    D *= 3000.0 / np.linalg.norm(D * msvd.separable_weights(err))  # exactly rank 1, no noise, strong
+    res = msvd.count_components(D, err=err, rng=np.random.default_rng(4))
+    assert res.n == 1, res.decision
+    # the singular values and the threshold are of the same weighted map: rank 1 stays rank 1
+    assert res.s[0] > res.threshold and res.s[1] < 1e-9 * res.s[0]
+    assert np.all(res.s[1:] < res.s_noise[1:])
+    # per-point weights 1 / err give the same noise-free map components of its own above the noise (the
+    # error scatter times the signal): the figure's "1 significant" beside values far above the line
+    per_point = msvd.count_components(D, err=err, weights=1 / err, rng=np.random.default_rng(4))
+    assert per_point.s[1] > per_point.threshold
+
+
+def test_separable_weights_are_exact_for_separable_errors():
+    a, b = np.array([1.0, 2.0, 4.0]), np.array([0.5, 1.0, 3.0, 7.0])
+    np.testing.assert_allclose(msvd.separable_weights(np.outer(a, b)), 1 / np.outer(a, b), rtol=1e-12)

@@ -120,17 +120,38 @@ def _delay_axis(ax, delay):
     ax.set_xlabel("delay (ps)")
 
 
-def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, solvent_err=None, terms=(),
-             chi2=None, params_text="", title="", coef_units=""):
-    """Fitted excited fraction, per-delay solvent coefficients and chi2 against delay.
+def _population_panel(ax, curves, delay):
+    """Fitted populations: the model on a fine grid (lines) and at the bins (markers)."""
+    for j, name in enumerate(curves.names):
+        ax.plot(curves.delay, curves.values[:, j], "-", color=f"C{j}", lw=1.2, label=name)
+        ax.plot(delay, curves.at_bins[:, j], "o", ms=3, mfc="none", color=f"C{j}")
+    ax.plot([], [], "o", ms=3, mfc="none", color="0.4", label="model at the bins (bin width included)")
+    ax.axhline(0, color="0.7", lw=0.5)
+    ax.set_ylabel(curves.ylabel, fontsize=8)
+    ax.legend(fontsize=7, loc="center left")
+
+
+def _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units):
+    for j, name in enumerate(terms):
+        if name in ("normalization", "energy"):  # nuisance terms
+            continue
+        e = None if solvent_err is None else solvent_err[:, j]
+        ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=f"{name} (bars: ±1 s.e.)")
+    ax.axhline(0, color="0.7", lw=0.5)
+    ax.set_ylabel(f"solvent term ({coef_units})" if coef_units else "solvent term")
+    ax.legend(fontsize=8)
+
+
+def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), chi2=None, params_text="",
+             title="", coef_units="", note=""):
+    """Fitted populations, per-delay solvent coefficients and chi2 against delay; only panels with content.
 
     Parameters
     ----------
     delay : ndarray (nd,), ps
-    population : ndarray (nd, ns), optional
-        Fitted populations times the excitation fraction.
-    frame_amplitude : ndarray (nd,), optional
-        Per-delay amplitude of the best structure.
+    curves : movieproc.render.kinetics.PopulationCurves, optional
+        The fitted model on a fine delay grid (through the IRF) and at the bins,
+        named by species, with its y label (units the fit used).
     solvent_coef, solvent_err : ndarray (nd, nterm), optional
     terms : sequence of str
         Names of the solvent coefficients.
@@ -138,43 +159,34 @@ def kinetics(delay, population=None, frame_amplitude=None, solvent_coef=None, so
         Reduced chi2 per delay.
     params_text : str
         Fitted parameters, printed in the figure.
+    note : str
+        Said in the figure (e.g. "no fit configured"), above the first panel.
     """
-    rows = 1 + (solvent_coef is not None) + (chi2 is not None)
-    fig, axes = plt.subplots(rows, 1, figsize=(7, 2.4 * rows + 0.6), sharex=True, layout="constrained")
+    panels = [k for k, v in (("population", curves), ("solvent", solvent_coef), ("chi2", chi2)) if v is not None]
+    rows = max(1, len(panels))
+    fig, axes = plt.subplots(rows, 1, figsize=(7, 2.4 * rows + 0.8), sharex=True, layout="constrained")
     axes = np.atleast_1d(axes)
-    ax = axes[0]
-    if population is not None:
-        for j in range(population.shape[1]):
-            ax.plot(delay, population[:, j], "-", color=f"C{j}", label="fitted excited fraction")
-    if frame_amplitude is not None:
-        ax.plot(delay, frame_amplitude, "o", ms=3, color="k", label="per-delay structure amplitude")
-    ax.set_ylabel("excited fraction")
-    ax.legend(fontsize=8, loc="best")
-    if params_text:
-        ax.text(0.01, 0.97, params_text, transform=ax.transAxes, va="top", fontsize=7, family="monospace",
-                bbox=dict(facecolor="white", alpha=0.8, lw=0))
-    i = 1
-    if solvent_coef is not None:
-        ax = axes[i]
-        i += 1
-        for j, name in enumerate(terms):
-            if name in ("normalization", "energy"):  # nuisance terms
-                continue
-            e = None if solvent_err is None else solvent_err[:, j]
-            ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=name)
-        ax.axhline(0, color="0.7", lw=0.5)
-        ax.set_ylabel(f"solvent term ({coef_units})" if coef_units else "solvent term")
-        ax.legend(fontsize=8)
-    if chi2 is not None:
-        ax = axes[i]
-        ax.plot(delay, chi2, "o-", ms=3, lw=0.8, color="C3")
-        ax.axhline(1, color="0.6", lw=0.8, ls="--")
-        ax.set_ylabel("reduced χ² per delay")
-    for ax in axes:
+    if not panels:
+        axes[0].axis("off")
+        axes[0].text(0.5, 0.5, note or "nothing to show", ha="center", va="center", fontsize=11)
+        fig.suptitle(title or "kinetics")
+        return fig
+    for ax, kind in zip(axes, panels, strict=True):
+        if kind == "population":
+            _population_panel(ax, curves, delay)
+            if params_text:
+                ax.text(0.6, 0.05, params_text, transform=ax.transAxes, va="bottom", ha="center", fontsize=7,
+                        family="monospace", bbox=dict(facecolor="white", alpha=0.8, lw=0))
+        elif kind == "solvent":
+            _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units)
+        else:
+            ax.plot(delay, chi2, "o-", ms=3, lw=0.8, color="C3")
+            ax.axhline(1, color="0.6", lw=0.8, ls="--")
+            ax.set_ylabel("reduced χ² per delay")
         _delay_axis(ax, delay)
     for ax in axes[:-1]:
         ax.set_xlabel("")
-    axes[0].set_title(title or "kinetics")
+    fig.suptitle((title or "kinetics") + (f"\n{note}" if note else ""), fontsize=11)
     return fig
 
 
@@ -211,56 +223,105 @@ def residual_map(q, delay, residual, err, title=""):
     return fig
 
 
-def svd_summary(q, delay, values, noise, u, v, n_significant, title=""):
-    """Singular values against the noise reference, and the leading vectors."""
-    fig, axes = plt.subplots(1, 3, figsize=(12, 3.8), layout="constrained")
+def svd_summary(q, delay, values, noise, u, v, n_significant, threshold=None, structured=None, decision="",
+                title=""):
+    """Singular values against the noise threshold the count used, and the leading vectors.
+
+    Parameters
+    ----------
+    q : ndarray (nq,), 1/Å
+    delay : ndarray (nd,), ps
+    values, noise : ndarray (k,)
+        Singular values of the weighted map and the mean spectrum of noise maps of the same weighting.
+    u : ndarray (nd, k); v : ndarray (k, nq)
+    n_significant : int
+        The count.
+    threshold : float, optional
+        The magnitude threshold of the count (largest noise singular value), same weighting.
+    structured : sequence of bool (k,), optional
+        Components whose vectors passed the structure test.
+    decision : str
+        The count's reasons in words, printed under the panels.
+    """
+    fig, axes = plt.subplots(1, 3, figsize=(12, 4.4), layout="constrained")
     k = np.arange(1, len(values) + 1)
-    axes[0].semilogy(k, values, "o-", label="data")
-    axes[0].semilogy(k, noise, "s--", color="0.5", label="noise reference")
-    axes[0].set_xlabel("component")
-    axes[0].set_ylabel("singular value")
-    axes[0].legend(fontsize=8)
-    axes[0].set_title(f"{n_significant} significant")
+    ax = axes[0]
+    ax.semilogy(k, noise, "s--", color="0.5", ms=4, label="noise maps (mean spectrum)")
+    if threshold is not None:
+        ax.axhline(threshold, color="C3", lw=1.0, label="threshold: largest noise value")
+    counted = np.arange(len(values)) < n_significant
+    if structured is not None and threshold is not None:
+        structured = np.asarray(structured, bool)[: len(values)]
+        counted = (values > threshold) & structured
+        rejected = (values > threshold) & ~structured
+        if rejected.any():
+            ax.semilogy(k[rejected], values[rejected], "x", color="C3", ms=8, mew=1.5,
+                        label="above threshold, vectors like noise: not counted")
+    ax.semilogy(k, values, "-", color="C0", lw=0.8)
+    ax.semilogy(k[counted], values[counted], "o", color="C0", label="counted")
+    ax.semilogy(k[~counted], values[~counted], "o", mfc="none", color="C0", label="not counted")
+    ax.set_xlabel("component")
+    ax.set_ylabel("singular value (weighted map, noise ~ 1)")
+    ax.legend(fontsize=7)
+    ax.set_title(f"{n_significant} component(s) counted")
     m = max(1, min(3, len(values)))
     for j in range(m):
         axes[1].plot(delay, u[:, j], "o-", ms=2, lw=0.8, label=f"{j + 1}")
         axes[2].plot(q, v[j], lw=0.8, label=f"{j + 1}")
     _delay_axis(axes[1], delay)
+    axes[1].set_ylabel("temporal vector (weighted)")
     axes[1].set_title("temporal vectors")
     axes[2].set_xlabel("q (1/Å)")
+    axes[2].set_ylabel("q vector (weighted)")
     axes[2].set_title("q vectors")
-    axes[2].legend(fontsize=8)
+    axes[2].legend(fontsize=8, title="component", title_fontsize=8)
+    if decision:
+        import textwrap
+
+        fig.text(0.01, 0.005, "\n".join(textwrap.wrap(decision, 190)), fontsize=7, va="bottom")
+        fig.get_layout_engine().set(rect=(0, 0.1, 1, 0.9))
     fig.suptitle(title or "SVD of the solute difference")
     return fig
 
 
-def realspace(r, delay, values, delays=None, title="", units=""):
-    """Real-space difference r^2 dS(r) at chosen delays: where distances are lost and gained.
+def realspace(r, delay, values, delays=None, title="", units="", info=None):
+    """Real-space difference at chosen delays: where pair distances are lost (< 0) and gained (> 0).
 
     Parameters
     ----------
     r : ndarray (nr,), Å
     delay : ndarray (nd,), ps
     values : ndarray (nd, nr)
+        Sharpened transform (change of the number of pairs per Å).
     delays : sequence of float, optional
         Delays to show (nearest bins); default up to 6 spread over the run.
+    info : dict, optional
+        ``sharpening``, ``q_range_invA``, ``damping_A2``, ``peak_sigma_A`` of the transform, printed.
     """
     ok = np.isfinite(values).all(axis=1)
+    cand = np.flatnonzero(ok)
     if delays is None:
-        cand = np.flatnonzero(ok)
         pick = cand[np.unique(np.linspace(0, cand.size - 1, min(6, cand.size)).round().astype(int))]
     else:
-        cand = np.flatnonzero(ok)
         pick = np.unique([cand[int(np.argmin(np.abs(delay[cand] - d)))] for d in delays])
-    fig, ax = plt.subplots(figsize=(6.5, 4.2), layout="constrained")
+    fig, ax = plt.subplots(figsize=(6.5, 4.4), layout="constrained")
     colors = plt.cm.viridis(np.linspace(0, 0.9, len(pick)))
     for c, i in zip(colors, pick, strict=False):
         ax.plot(r, values[i], color=c, lw=1.2, label=f"{delay[i]:.3g} ps")
     ax.axhline(0, color="0.6", lw=0.6)
     ax.set_xlabel("r (Å)")
-    ax.set_ylabel("r²ΔS(r)" + (f" ({units})" if units else ""))
-    ax.legend(fontsize=8, ncols=2)
-    ax.set_title(title or "real-space difference (damped sine transform)")
+    ax.set_ylabel("ΔP(r): pairs gained − lost per Å" + (f" ({units})" if units else "")
+                  + "\n(an a-b pair weighted f_a f_b / F)", fontsize=9)
+    ax.legend(fontsize=8, ncols=2, title="delay", title_fontsize=8)
+    sub = ""
+    if info:
+        lo, hi = info.get("q_range_invA", (np.nan, np.nan))
+        sigma = info.get("peak_sigma_A", np.nan)
+        sub = (f"\nsharpened by {info.get('sharpening', '?')}; q {lo:.2g}-{hi:.2g} 1/Å; "
+               f"damping κ = {info.get('damping_A2', np.nan):.3g} Å²\neach distance a Gaussian of σ = {sigma:.2f} Å: "
+               f"a change under ~{3.5 * sigma:.1f} Å is one −/+ pair\nwhose zero crossing (not its extrema) "
+               "marks the mean of the two distances")
+    ax.set_title((title or "real-space difference") + sub, fontsize=9)
     return fig
 
 

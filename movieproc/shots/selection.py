@@ -7,6 +7,7 @@ bit is set. The counts per reason are what a user checks first after a run.
 from __future__ import annotations
 
 import numpy as np
+from scipy.stats import trim_mean
 
 #: Reason bits for dropping a shot.
 REASONS = {
@@ -14,12 +15,23 @@ REASONS = {
     "timing_missing": 2,     # timing tool found no edge (NaN)
     "timing_amplitude": 4,   # edge amplitude below threshold
     "timing_range": 8,       # edge outside the calibrated window
-    "outlier": 16,           # curve far from the running median of its neighbours
+    "outlier": 16,           # curve far from its reference (see block_scores), beyond what the signal can make
 }
 
 #: Fewest shots of one kind (pump-on or pump-off) in a block for their per-q median and MAD
 #: to mean anything: below it, their outlier scores stay NaN and they are never flagged.
 MIN_SHOTS_TO_SCORE = 5
+
+#: Fraction cut from each end, per q, in the trimmed means that estimate the pump signal: a minority
+#: of distorted shots (< 20 % of a group) cannot steer them (common practice: 10-25 %).
+TRIM_FRACTION = 0.2
+
+#: Most directions of the pump signal removed from a block's pump-on shots: a block of neighbouring
+#: stage positions holds a few signal shapes (e.g. excited state, its vibration, heating).
+SIGNAL_RANK = 3
+#: A signal direction must exceed the noise edge sqrt(m) + sqrt(nq) (Marchenko-Pastur: largest singular
+#: value of an m x nq map of unit-variance noise) by this factor; trimmed means are noisier than means.
+NOISE_EDGE_MARGIN = 1.5
 
 #: 1.4826 * MAD estimates the standard deviation of normally distributed data
 #: (1 / Phi^-1(3/4); Hampel 1974, J. Am. Stat. Assoc. 69, 383).
@@ -137,27 +149,121 @@ def reason_counts(flags):
     return out
 
 
-def block_scores(curves, pump_on):
-    """Outlier scores of one block of shots, pump-on and pump-off each against their own median.
+def _half_means(d):
+    """Trimmed means (per q) of the shots with the smaller and the larger signal, each times sqrt(count).
 
-    A strong pump signal is then never mistaken for an outlier. A kind with
-    fewer than :data:`MIN_SHOTS_TO_SCORE` shots in the block is not scored.
+    The split is at the median amplitude along the group's trimmed mean; the sqrt(count)
+    undoes the averaging, so each row has the single-shot noise.
+    """
+    mean = trim_mean(d, TRIM_FRACTION, axis=0)
+    norm = np.linalg.norm(mean)
+    if not norm > 0 or d.shape[0] < 2 * MIN_SHOTS_TO_SCORE:
+        return mean[None, :] * np.sqrt(d.shape[0])
+    amplitude = d @ (mean / norm)
+    high = amplitude > np.median(amplitude)
+    return np.stack([trim_mean(d[rows], TRIM_FRACTION, axis=0) * np.sqrt(rows.sum()) for rows in (~high, high)])
+
+
+def signal_directions(differences, group, rank=None):
+    """Orthonormal q-space directions (k, nq) of the pump signal in a block of pump-on shots, k <= ``rank``.
+
+    Each group of shots (one stage position) gives robust averages of its
+    differences: the per-q trimmed means of the half with the smaller and the half
+    with the larger signal (their difference holds the change of the signal across
+    the group's spread of true delays, e.g. the timing jitter over a fast onset).
+    The leading right singular vectors of these averages (each scaled to unit noise)
+    that rise above the noise edge sqrt(m) + sqrt(nq) of an m x nq map of unit noise
+    (times :data:`NOISE_EDGE_MARGIN`) are the signal directions. Averages are shared
+    by many shots, so a shot with the signal of its true delay is described by them
+    even when it is rare in its own group (a jitter tail across time zero), while a
+    distorted shot is trimmed from every average and keeps its distortion.
+
+    Parameters
+    ----------
+    differences : ndarray (n, nq)
+        Pump-on curves minus the pump-off reference, in units of the single-shot noise.
+    group : ndarray (n,)
+        Group label per shot (e.g. the stage delay).
+    rank : int, optional
+        Most directions returned; default :data:`SIGNAL_RANK`.
+
+    Returns
+    -------
+    ndarray (k, nq) float64
+    """
+    d = np.asarray(differences, np.float64)
+    group = np.asarray(group)
+    rank = SIGNAL_RANK if rank is None else int(rank)
+    rows = [_half_means(d[group == g]) for g in np.unique(group) if (group == g).sum() >= MIN_SHOTS_TO_SCORE]
+    if not rows:
+        return np.zeros((0, d.shape[1]))
+    averages = np.concatenate(rows)
+    _, s, vt = np.linalg.svd(averages, full_matrices=False)
+    edge = NOISE_EDGE_MARGIN * (np.sqrt(averages.shape[0]) + np.sqrt(d.shape[1]))
+    return vt[: min(rank, int(np.count_nonzero(s > edge)))]
+
+
+def block_scores(curves, pump_on, stage_delay=None):
+    """Outlier scores of one block of neighbouring shots that do not follow the pump signal.
+
+    Pump-off shots are scored against the per-q median of the block's pump-off
+    shots (they carry no signal). Pump-on shots are scored on what the signal
+    cannot make: each is differenced against the same pump-off median (a reference
+    without signal, so it cannot lag behind an onset), and the part of the
+    difference along the block's signal directions (:func:`signal_directions`,
+    robust averages per stage position) is removed before scoring. Near time zero
+    the timing jitter spreads the shots of one stage position over the rising edge,
+    so their signals range from none to full; a median of the pump-on shots (or a
+    running median over stage positions) sits between and calls the shots at either
+    end outliers, while the projection removes any amount of the signal shapes, so a
+    shot's score does not depend on where it fell on the onset.
+
+    Scores are the root mean square over q of the robust z-values, the scale being
+    the per-q MAD (times 1.4826) of the same kind's residuals in the block, the mean
+    of squares taken over the q points left after the projection (nq - k), so both
+    kinds are about 1 for a shot that differs only by noise. A kind with fewer than
+    :data:`MIN_SHOTS_TO_SCORE` shots in the block is not scored; without pump-off
+    shots the pump-on median is the reference.
 
     Parameters
     ----------
     curves : array_like (n, nq)
         Normalized curves of the block.
     pump_on : array_like (n,) bool
+    stage_delay : array_like (n,), optional
+        Nominal stage delay per shot, ps; shots at the same value form a group.
+        Default: the whole block is one group.
 
     Returns
     -------
     ndarray (n,) float64
-        :func:`outlier_scores`; NaN for shots not scored.
+        NaN for shots not scored.
     """
+    c = np.asarray(curves, np.float64)
     pump_on = np.asarray(pump_on, bool)
+    group = np.zeros(pump_on.size) if stage_delay is None else np.asarray(stage_delay, float)
     scores = np.full(pump_on.size, np.nan)
-    for state in (True, False):
-        same = pump_on == state
-        if same.sum() >= MIN_SHOTS_TO_SCORE:
-            scores[same] = outlier_scores(np.asarray(curves)[same])
+    off, on = ~pump_on, pump_on
+    if off.sum() >= MIN_SHOTS_TO_SCORE:
+        scores[off] = outlier_scores(c[off])
+        reference = np.median(c[off], axis=0)
+    elif on.sum() >= MIN_SHOTS_TO_SCORE:
+        reference = np.median(c[on], axis=0)
+    else:
+        return scores
+    if on.sum() < MIN_SHOTS_TO_SCORE:
+        return scores
+    # in units of the single-shot noise per q (pump-off spread, else pump-on)
+    spread = c[off] if off.sum() >= MIN_SHOTS_TO_SCORE else c[on]
+    d = (c[on] - reference) / _mad(spread)
+    basis = signal_directions(d, group[on])
+    residual = d - (d @ basis.T) @ basis
+    z = residual / _mad(residual)
+    scores[on] = np.sqrt(np.sum(z**2, axis=1) / (c.shape[1] - basis.shape[0]))
     return scores
+
+
+def _mad(x):
+    """Per-q robust standard deviation (1.4826 * median absolute deviation), (nq,); inf where zero."""
+    mad = np.median(np.abs(x - np.median(x, axis=0)), axis=0) * MAD_TO_SIGMA
+    return np.where(mad > 0, mad, np.inf)

@@ -54,16 +54,13 @@ CONFIG_KEYS = {
     "p0.osc_damping": "fit.oscillation_damping_ps", "n_lifetimes": "fit.lifetimes_ps", "scheme": "fit.kinetics",
     "transitions": "fit.network", "species": "fit.signal_species", "oscillation": "fit.oscillation",
     "rates": "fit.lifetimes_ps", "terms": "solvent.terms",
+    "pair": "realspace.sharpen_pair", "q_range": "realspace.q_range_invA", "damping": "realspace.damping_A2",
 }
 #: In the network scheme the rate matrix is made from ``fit.network``.
 NETWORK_KEYS = {**CONFIG_KEYS, "rates": "fit.network"}
 
-#: Real-space view: distances 0-10 Å cover the intramolecular pairs of small solutes, in 0.05 Å steps
-#: (finer than the ~pi / q_max ~ 0.4 Å resolution of a typical q range).
-REALSPACE_MAX_R = 10.0
-REALSPACE_STEP = 0.05
-#: Gaussian damping exp(-kappa q^2), Å^2, of the sine transform: suppresses truncation ripples at q_max.
-REALSPACE_DAMPING = 0.03
+#: Real-space view: distances in 0.01 Å steps (peak positions to a fraction of the ~0.2-0.5 Å peak width).
+REALSPACE_STEP = 0.01
 #: Nuisance terms (not a solvent response): a fit's solute model cannot take their shape.
 NUISANCE_TERMS = ("normalization", "energy")
 #: Fit parameters in ps (the rest are amplitudes).
@@ -182,6 +179,7 @@ def analyze(data: Data, config: dict, warnings: Warnings):
     use = _fit_rows(fcfg, data.delay, usable)
     fit = _global_fit(fcfg, data, use, basis, warnings) if fcfg["mode"] != "none" else None
     arrays, solute = _solute(fcfg, data, use, basis, fit, warnings)
+    result["realspace"] = _realspace(config["realspace"], data, solute, use, arrays, solute_units)
     result["fit"] = fit
     result["svd_count"] = _svd(config["svd"], data, solute, usable, use, arrays, warnings)
     if data.models is not None and "traj_dS" in data.models and fcfg["mode"] != "none":
@@ -283,14 +281,27 @@ def _solute(fcfg, data, use, basis, fit, warnings):
         coef = coef_err = None
         solute = diff
     arrays["solute"] = solute
-    # real-space view: which distances change (damped sine transform of q * solute)
-    r = np.arange(0.0, REALSPACE_MAX_R + 1e-9, REALSPACE_STEP)
-    arrays["solute_realspace"] = realspace.sine_transform(data.q, solute, r, kappa=REALSPACE_DAMPING)
     if coef is not None:
         arrays.update(solvent_coef=coef, solvent_coef_err=coef_err)
     arrays = {k: _rows(v, use) for k, v in arrays.items()}
-    arrays["r"] = r
     return arrays, solute
+
+
+def _realspace(rcfg, data, solute, use, arrays, units):
+    """Sharpened real-space view of the solute difference; returns its attrs (what F, q range, damping)."""
+    elements = [str(e) for e in data.models["element"][...]] if data.models is not None else None
+    sharpen, label = realspace.sharpening(data.q, rcfg["sharpen_pair"], elements)
+    r = np.arange(REALSPACE_STEP, rcfg["r_max_A"] + 1e-9, REALSPACE_STEP)
+    values, kappa = realspace.sharpened_transform(data.q, solute, r, sharpen, rcfg["q_range_invA"],
+                                                  rcfg["damping_A2"])
+    arrays.update(solute_realspace=_rows(values, use), r=r)
+    low, high = rcfg["q_range_invA"] or (float(data.q[0]), float(data.q[-1]))
+    pairs = "pairs" if units == SCALE_UNITS else f"({units}) / e.u.^2"
+    return {"units": f"{pairs} / Å", "meaning": "change of the number of pairs per Å (gained > 0, lost < 0), an a-b "
+            "pair weighted f_a f_b / F: dP(r) = (r / pi) int q dS(q) / F(q) sin(q r) exp(-kappa q^2) dq",
+            "sharpening": label, "q_range_invA": [low, high], "damping_A2": kappa,
+            "peak_sigma_A": realspace.peak_width(kappa)}
+
 
 
 def _svd(ncfg, data, solute, usable, use, arrays, warnings):
@@ -303,12 +314,12 @@ def _svd(ncfg, data, solute, usable, use, arrays, warnings):
                                  noise_err=noise_err)
     for w in count.warnings:
         warnings.add(w)
-    u, s, vt = svd.svd(solute, weights=1.0 / data.err[use])
+    u, s, vt = count.u, count.s, count.vt  # the same weighted map as the count and its noise reference
     k = min(ncfg["max_components"], s.size)
     arrays.update(svd_values=s[:k], svd_noise=count.s_noise[:k], svd_u=_rows(u[:, :k], use), svd_v=vt[:k])
-    log.info("SVD: %d significant component(s) (values %s; noise %s)", count.n,
-             np.array2string(s[:k], precision=3), np.array2string(count.s_noise[:k], precision=3))
-    return int(count.n)
+    log.info("SVD: %s", count.decision)
+    return {"svd_components": int(count.n), "svd_threshold": count.threshold, "svd_decision": count.decision,
+            "svd_noise_source": count.noise_source, "svd_structured": [bool(b) for b in count.smooth[:k]]}
 
 
 def _rows(values, use):
@@ -454,28 +465,28 @@ def _array_attrs(name, result):
     units = result["units"]
     u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
          "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
-         "solute_realspace": f"({units}) / Å", "population": "1", "frame_amplitude": "1",
+         "solute_realspace": (result.get("realspace") or {}).get("units"), "population": "1", "frame_amplitude": "1",
          "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
     if name.startswith("geometry_"):
         u = result["geometry_units"][name]
     meaning = None
     if name == "solute_realspace":
-        meaning = {"meaning": "r^2 dS(r) = r / (2 pi^2) * integral of q dS(q) sin(q r) exp(-kappa q^2) dq, "
-                              f"kappa = {REALSPACE_DAMPING} Å^2: which distances change"}
+        meaning = {k: v for k, v in result["realspace"].items() if k != "units"}
     elif name in ("solvent_coef", "solvent_coef_err"):
         meaning = {"terms": result["names"],
                    "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
                               "with differentials per K; normalization: dimensionless nuisance)"}
     elif name.startswith("svd_"):
-        meaning = {"meaning": "SVD of the solute difference weighted by 1 / diff_err (dimensionless)"}
+        meaning = {"meaning": "SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation "
+                              "of 1 / diff_err (dimensionless); svd_noise: noise maps of the same weighting; "
+                              "attrs svd_threshold, svd_structured, svd_decision: how the count was made"}
     return u, meaning
 
 
 def _write(out, q, delay, arrays, result, config, warnings):
     fit = result.get("fit")
     attrs = {"written": now(), "analysis_units": result["units"], "absolute_scale_factor": result["factor"],
-             "svd_components": result["svd_count"], "solvent_terms": result["names"],
-             "warnings": list(warnings)}
+             "solvent_terms": result["names"], "warnings": list(warnings), **result["svd_count"]}
     if fit is not None:
         attrs.update(_fit_attrs(fit, config))
     with store.atomic_path(out) as tmp:

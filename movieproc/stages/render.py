@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from ..io import store
-from ..render import figures
+from ..render import figures, kinetics
 
 log = logging.getLogger("movieproc.render")
 
@@ -76,28 +76,37 @@ def run(inputs: dict, out: Path, config: dict) -> list:
 def _analysis_figures(m, figs, name, q, delay, err, model, rcfg):
     """SVD, kinetics, residual and real-space figures, where the movie holds those results."""
     if "svd_values" in m:
+        attrs = m.attrs
         figs.save(figures.svd_summary(q, delay, store.read(m, "svd_values"), store.read(m, "svd_noise"),
-                                      store.read(m, "svd_u"), store.read(m, "svd_v"), m.attrs.get("svd_components", 0),
-                                      title=f"{name}: SVD of the solute difference"), "svd.png")
+                                      store.read(m, "svd_u"), store.read(m, "svd_v"), attrs.get("svd_components", 0),
+                                      attrs.get("svd_threshold"), attrs.get("svd_structured"),
+                                      attrs.get("svd_decision", ""), title=f"{name}: SVD of the solute difference"),
+                  "svd.png")
     if "population" in m or "solvent_coef" in m:
-        params = m.attrs.get("fit_parameters", {})
-        text = "\n".join(f"{k:>9s} = {v['value']:.4g} ± {v['error']:.2g} {v.get('units', '').strip('1')}"
-                         for k, v in params.items())
-        pop = _read(m, "population")
-        if pop is not None and "alpha" in params:
-            pop = pop * params["alpha"]["value"]
-        terms = [str(t) for t in m["term"][...]] if "term" in m else []
-        figs.save(figures.kinetics(delay, pop, None, _read(m, "solvent_coef"), _read(m, "solvent_coef_err"), terms,
-                                   _read(m, "chi2"), text, title=f"{name}: kinetics",
-                                   coef_units=m["solvent_coef"].attrs.get("units", "") if "solvent_coef" in m else ""),
-                  "kinetics.png")
+        _kinetics_figure(m, figs, name, delay)
     if model is not None:
         figs.save(figures.residual_map(q, delay, store.read(m, "residual"), err, title=f"{name}: fit residuals"),
                   "residual_map.png")
     if "solute_realspace" in m:
+        info = dict(m["solute_realspace"].attrs)
         figs.save(figures.realspace(store.read(m, "r"), delay, store.read(m, "solute_realspace"), rcfg["delays_ps"],
-                                    title=f"{name}: real-space difference (solute)",
-                                    units=m["solute_realspace"].attrs.get("units", "")), "realspace.png")
+                                    title=f"{name}: real-space difference (solute)", units=info.get("units", ""),
+                                    info=info), "realspace.png")
+
+
+def _kinetics_figure(m, figs, name, delay):
+    """Fitted populations on a fine grid (named by species), solvent terms and chi2; says when nothing was fitted."""
+    params = m.attrs.get("fit_parameters", {})
+    text = "\n".join(f"{k:>9s} = {v['value']:.4g} ± {v['error']:.2g} {v.get('units', '').strip('1')}"
+                     for k, v in params.items())
+    curves = kinetics.population_curves(dict(m.attrs), delay, _read(m, "population"))
+    mode = m.attrs.get("fit_mode") or (m.attrs.get("config") or {}).get("fit", {}).get("mode", "none")
+    note = "" if curves is not None else f"no fit configured (fit.mode: {mode}): no populations drawn"
+    terms = [str(t) for t in m["term"][...]] if "term" in m else []
+    coef_units = m["solvent_coef"].attrs.get("units", "") if "solvent_coef" in m else ""
+    figs.save(figures.kinetics(delay, curves, _read(m, "solvent_coef"), _read(m, "solvent_coef_err"), terms,
+                               _read(m, "chi2"), text, title=f"{name}: kinetics", coef_units=coef_units, note=note),
+              "kinetics.png")
 
 
 def _geometry(m, figs, name, delay):

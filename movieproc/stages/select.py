@@ -35,7 +35,8 @@ def _block_scores(start, stop, shots, flags, normalization):
         return start, ok, np.full(0, np.nan)
     curves = normalize(shots.curves(start, stop)[ok], shots.q, normalization["normalization"],
                        normalization["norm_q_range"])
-    return start, ok.astype(np.int32), selection.block_scores(curves, shots.table["pump_on"][start + ok])
+    return start, ok.astype(np.int32), selection.block_scores(curves, shots.table["pump_on"][start + ok],
+                                                              shots.table["stage_delay"][start + ok])
 
 
 def _flags(shots, sel, normalization, compute, warnings):

@@ -31,7 +31,7 @@ rule analyze:
     output:
         zstore("analysis"),
     params:
-        config=section("scaling", "solvent", "svd", "fit", "differences"),
+        config=section("scaling", "solvent", "svd", "realspace", "fit", "differences"),
     threads: workflow.cores
     run:
         stage("analyze", input, output, params.config)
