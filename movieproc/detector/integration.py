@@ -160,6 +160,16 @@ def _moment_pairs(m: int):
     return [(a, b) for a in range(m) for b in range(a, m)]
 
 
+def _grid_step(grid: np.ndarray) -> float:
+    """Step of a uniform, increasing grid of at least 2 points; ValueError otherwise."""
+    if grid.ndim != 1 or grid.size < 2:
+        raise ValueError("grid must be 1-D with at least 2 points")
+    step = (grid[-1] - grid[0]) / (grid.size - 1)
+    if not step > 0 or not np.allclose(np.diff(grid), step, rtol=1e-6, atol=0):
+        raise ValueError("grid must be uniform and increasing")
+    return float(step)
+
+
 def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimuth=None,
                   sector_edges=None, regressors=(), splitting=True, saturation_level=None) -> Binning:
     """Precompute the pixel-to-grid layout.
@@ -200,11 +210,7 @@ def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimut
         raise ValueError(f"coordinate must be a (ny, nx) map, got shape {coordinate.shape}")
     shape = coordinate.shape
     grid = np.asarray(grid, dtype=np.float64)
-    if grid.ndim != 1 or grid.size < 2:
-        raise ValueError("grid must be 1-D with at least 2 points")
-    step = (grid[-1] - grid[0]) / (grid.size - 1)
-    if not step > 0 or not np.allclose(np.diff(grid), step, rtol=1e-6, atol=0):
-        raise ValueError("grid must be uniform and increasing")
+    step = _grid_step(grid)
     ng = grid.size
 
     def pixel_map(values, name, dtype=np.float64):
@@ -310,12 +316,14 @@ def _frame_sums(x, binning):
 
 
 @numba.njit(nogil=True, cache=True, boundscheck=False, fastmath={"contract"})
-def _accumulate(frames, row, coef, n_rows, saturation, lanes, out):  # pragma: no cover - compiled
+def _accumulate(frames, row, coef, n_rows, saturation, lanes, out):  # noqa: C901  # pragma: no cover - compiled
     """out[i, r, k] = sum over pixels p with row[p] == r of coef[p, k] * frames[i, p].
 
     frames (n, npix) any real dtype; values >= saturation become NaN. ``lanes``
     is LANES, passed at run time so the inner loop is vectorized with checks.
     """
+    # one compiled pass over the pixels with the lane and saturation branches inline (complexity
+    # above the house limit on purpose: split into helpers the kernel runs slower)
     n, npix = frames.shape
     width = coef.shape[1]
     sat = np.float32(saturation)
