@@ -5,7 +5,8 @@ Every check that can be made from the inputs alone is made here, once, before a 
 written: the config (types, ranges, finite numbers), each run file against the input
 contract, and the content that would stop a stage later (pulse-id order, non-finite values,
 0 shots, no pump-off shots, timing edges all missing while the correction is on, pulse
-energies that make the pulse-energy cut meaningless). The stages keep their own checks;
+energies that make the pulse-energy cut meaningless, more references or bootstrap replicates than shots, a
+solvent differentials table that cannot be read). The stages keep their own checks;
 these only move the failure before any work.
 """
 
@@ -19,6 +20,7 @@ import numpy as np
 
 from .errors import ConfigError, DataError, InputError, MovieprocError
 from .io import runfile
+from .io.tables import read_curve_table
 
 log = logging.getLogger("movieproc.check")
 
@@ -151,6 +153,65 @@ def _config_problems(info, table: dict, config: dict) -> list[Problem]:
     return problems
 
 
+def _difference_problems(table: dict, config: dict) -> list[Problem]:
+    """References and bootstrap replicates the run's shots cannot provide."""
+    problems = []
+    differences = config.get("differences", {})
+    n_off, n = int(np.count_nonzero(~table["pump_on"])), int(table["pump_on"].size)
+    k = differences.get("references", 1)
+    if 0 < n_off < k:
+        problems.append(Problem("differences.references", f"{k}, but the run has only {n_off} pump-off shot(s)",
+                                f"at most {n_off} references per pump-on shot (the bin covariance and errors need "
+                                "k distinct reference shots)", kind="config"))
+    replicates = differences.get("bootstrap", 0)
+    if replicates and n < replicates:
+        problems.append(Problem("differences.bootstrap", f"{replicates} replicates for a run of {n} shot(s)",
+                                f"fewer replicates than shots (at most {n}), or 0 (no bootstrap)", kind="config"))
+    return problems
+
+
+def _differentials_path(config: dict, base) -> Path | None:
+    solvent = config.get("solvent", {})
+    name = solvent.get("differentials")
+    if not name or not solvent.get("enabled", True):
+        return None
+    path = Path(name)
+    return path if path.is_absolute() else Path(base or Path.cwd()) / path
+
+
+def analysis_file_problems(config: dict, q=None, base=None) -> list[Problem]:
+    """Problems of the analysis' tabular inputs (``solvent.differentials``), found before any stage runs.
+
+    Parameters
+    ----------
+    config : dict
+        The validated config.
+    q : ndarray, optional
+        The run's q grid (1/Å), when known: the table must cover it.
+    base : path, optional
+        Folder of relative paths (default: the working directory).
+    """
+    path = _differentials_path(config, base)
+    if path is None:
+        return []
+    terms = config["solvent"].get("terms", ["dT"])
+    try:
+        table = read_curve_table(path, min_columns=2, max_columns=3,
+                                 what="columns q (1/Å), dS/dT[, dS/drho], comma- or whitespace-separated")
+    except InputError as exc:
+        return [Problem("solvent.differentials", f"{exc.source}: {exc.found}", exc.expected, kind="config")]
+    problems = []
+    if "drho" in terms and table.shape[1] < 3:
+        problems.append(Problem("solvent.terms", f"{terms}, but {path} has no dS/drho column",
+                                "terms the differentials file has (dT only), or a third column dS/drho",
+                                kind="config"))
+    if q is not None and len(q) and (q[0] < table[0, 0] - 1e-9 or q[-1] > table[-1, 0] + 1e-9):
+        problems.append(Problem("solvent.differentials",
+                                f"{path} covering q {table[0, 0]:.3g}-{table[-1, 0]:.3g} 1/Å",
+                                f"a table covering the run's q range {q[0]:.3g}-{q[-1]:.3g} 1/Å", kind="config"))
+    return problems
+
+
 def _curve_problems(info) -> list[Problem]:
     """Shots whose curves hold NaN or infinite values, counted per file."""
     problems = []
@@ -174,6 +235,7 @@ def check_content(info, config: dict) -> list[Problem]:
     """Content problems of a run that meets the contract, judged with the (validated) config."""
     table = runfile.read_table(info, check=False)
     problems = _table_problems(info, table) + _config_problems(info, table, config)
+    problems += _difference_problems(table, config)
     empty = [f.name for f, n in zip(info.files, info.counts, strict=True) if n == 0]
     if empty:
         problems.append(Problem(f"{info.files[0].parent}", f"{len(empty)} file(s) with 0 shots ({', '.join(empty)})",
@@ -191,21 +253,25 @@ def missing_geometry(raw: dict) -> list[str]:
     return [f"detector.{k}" for k in GEOMETRY_KEYS if detector.get(k) is None]
 
 
-def check(files, config: dict) -> list[Problem]:
-    """Every problem of ``files`` under a validated ``config``, fatal ones and warnings."""
+def check(files, config: dict, base=None) -> list[Problem]:
+    """Every problem of ``files`` and the config's input tables under a validated ``config``.
+
+    ``base`` is the folder of relative paths in the config (default: the working directory).
+    """
     missing = [f for f in files if not Path(f).exists()]
     problems = [Problem(str(f), "no such file", "an existing HDF5 run file") for f in missing]
     present = [f for f in files if f not in missing]
-    if not present:
-        return problems
-    info, contract = check_files(present)
-    problems += contract
-    if info is not None and not missing:
-        problems += check_content(info, config)
+    info = None
+    if present:
+        info, contract = check_files(present)
+        problems += contract
+        if info is not None and not missing:
+            problems += check_content(info, config)
+    problems += analysis_file_problems(config, None if info is None else info.q, base)
     return problems
 
 
-def preflight(files, config: dict) -> runfile.RunInfo:
+def preflight(files, config: dict, base=None) -> runfile.RunInfo:
     """Check the run before any store is written; raise the first fatal problem, log warnings.
 
     Raises
@@ -213,7 +279,7 @@ def preflight(files, config: dict) -> runfile.RunInfo:
     MovieprocError
         The first fatal problem (the message says how many more ``movieproc check`` lists).
     """
-    problems = check(files, config)
+    problems = check(files, config, base)
     fatal = [p for p in problems if p.fatal]
     for p in problems:
         if not p.fatal:

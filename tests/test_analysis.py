@@ -336,3 +336,92 @@ def test_sign_check_on_the_run(reduced):
     assert r["best"] == -1
     assert r["minus"] < 0.7 * r["nominal"]
     assert r["plus"] > 1.5 * r["nominal"]
+
+
+# ------------------------------------------------------------------ tabular inputs and pre-flight
+
+DIFFERENTIALS = ("# q (1/A), dS/dT, dS/drho\n"
+                 "0.5,0.2758,-19.42\n0.52,0.3715,-26.46\n0.55,0.4977,-35.87\n6.0,0.1,-1.0\n")
+
+
+@pytest.mark.parametrize("text", [
+    DIFFERENTIALS,                                                        # comma-separated, # comment
+    DIFFERENTIALS.replace(",", " "),                                      # spaces
+    DIFFERENTIALS.replace(",", "\t"),                                     # tabs
+    "q dS/dT dS/drho\n" + DIFFERENTIALS.replace(",", "   ").split("\n", 1)[1],  # header line, runs of spaces
+    "q,dSdT,dSdrho\n" + DIFFERENTIALS.split("\n", 1)[1] + "# end\n",      # header, trailing comment
+])
+def test_differentials_read_as_users_write_them(tmp_path, text):
+    path = tmp_path / "diff.txt"
+    path.write_text(text)
+    q = np.array([0.5, 0.52, 3.0])
+    out = analyze.read_differentials(path, q)
+    # values of the table itself at its own q points (and linear interpolation between 0.55 and 6.0)
+    np.testing.assert_allclose(out["dT"][:2], [0.2758, 0.3715])
+    np.testing.assert_allclose(out["drho"][:2], [-19.42, -26.46])
+    np.testing.assert_allclose(out["dT"][2], 0.4977 + (3.0 - 0.55) / (6.0 - 0.55) * (0.1 - 0.4977))
+
+
+@pytest.mark.parametrize("text, needle", [
+    ("0.5,0.1\n0.4,0.2\n0.6,0.3\n", "q not increasing"),
+    ("0.5,0.1\n0.6,abc\n", "non-numeric"),
+    ("0.5,0.1\n0.6,nan\n", "non-finite"),
+    ("0.5,0.1,1\n0.6,0.2\n", "columns"),
+    ("0.5\n0.6\n", "1 column"),
+    ("# only a comment\n", "no data"),
+])
+def test_bad_differentials_are_refused_before_any_stage(tmp_path, text, needle):
+    from movieproc import checks
+
+    path = tmp_path / "bad.csv"
+    path.write_text(text)
+    cfg = mpconfig.load(ROOT / "config" / "config.yaml", [f"output_dir={tmp_path}",
+                                                          f"solvent.differentials={path}"])
+    problems = checks.analysis_file_problems(cfg)
+    assert len(problems) == 1 and problems[0].fatal, problems
+    err = problems[0].error()
+    assert isinstance(err, ConfigError) and err.key == "solvent.differentials" and _schema_has(err.key)
+    assert needle in str(err) and str(path) in str(err)
+    # a good table passes, and one without dS/drho refuses the drho term naming solvent.terms
+    path.write_text(DIFFERENTIALS)
+    assert checks.analysis_file_problems(cfg) == []
+    path.write_text("q dSdT\n0.5 0.1\n6.0 0.2\n")
+    cfg["solvent"]["terms"] = ["dT", "drho"]
+    (p,) = checks.analysis_file_problems(cfg)
+    assert p.error().key == "solvent.terms"
+    # and a table not covering the run's q range
+    cfg["solvent"]["terms"] = ["dT"]
+    (p,) = checks.analysis_file_problems(cfg, q=np.linspace(0.5, 8.0, 5))
+    assert p.where == "solvent.differentials" and "q range" in p.expected
+
+
+def test_preflight_refuses_more_references_or_replicates_than_shots(tmp_path):
+    from conftest import run_datasets, write_h5
+
+    from movieproc import checks
+
+    f = write_h5(tmp_path / "run.h5", run_datasets(n=30, off_every=3))  # 10 pump-off shots, 30 shots
+    base = [f"output_dir={tmp_path}", "solvent.differentials=null"]
+    cfg = mpconfig.load(ROOT / "config" / "config.yaml", base + ["differences.references=11"])
+    keys = [p.where for p in checks.check([str(f)], cfg) if p.fatal]
+    assert keys == ["differences.references"]
+    cfg = mpconfig.load(ROOT / "config" / "config.yaml", base + ["differences.bootstrap=31"])
+    with pytest.raises(ConfigError) as err:
+        checks.preflight([str(f)], cfg)
+    assert err.value.key == "differences.bootstrap" and _schema_has("differences.bootstrap")
+    cfg = mpconfig.load(ROOT / "config" / "config.yaml", base + ["differences.bootstrap=30"])
+    assert [p for p in checks.check([str(f)], cfg) if p.fatal] == []
+
+
+def test_a_singular_bin_correlation_names_the_references_key(tmp_path):
+    # two bins whose differences are the same linear combination of shots: R = [[1, 1], [1, 1]]
+    data = analyze.Data(path=tmp_path / "binned.zarr", q=np.zeros(1), delay=np.zeros(2), diff=np.zeros((2, 1)),
+                        err=np.ones((2, 1)), low=np.zeros(2, bool), off_mean=np.zeros((2, 1)), spread=np.zeros(2),
+                        boot=None, units="", models=None, correlation=np.ones((2, 2)))
+    with pytest.raises(ConfigError) as err:
+        analyze._correlation(data, np.ones(2, bool))
+    assert err.value.key == "differences.references" and _schema_has(err.value.key)
+    data.correlation = np.eye(2)
+    np.testing.assert_array_equal(analyze._correlation(data, np.array([True, False])), np.eye(1))
+    data.correlation = None
+    assert analyze._correlation(data, np.ones(2, bool)) is None

@@ -365,3 +365,27 @@ def test_species_with_signal_by_scheme():
     with pytest.raises(ValueError) as err:
         models.species_with_signal(2, "network", [[0, 1]])
     assert err.value.parameter == "transitions"
+
+
+def test_full_jacobian_matches_the_normal_matrix_and_the_sandwich():
+    """The sparse Jacobian of (theta, free curves, solvent coefficients) gives the fit's normal matrix;
+    its sandwich under a bin correlation equals the dense formula M^-1 J^T (R kron I) J M^-1."""
+    rng = np.random.default_rng(5)
+    D, err, _ = sequential_data(rng, TRUTH_SEQ)
+    model = models.SpeciesModel(2, species=[0, 1], solvent=DSDT[None], solvent_names=["dT"])
+    prob = varpro.validate(model, D, err, DELAY, START_SEQ)
+    opt = varpro.optimize_parameters(prob)
+    Jt = varpro._theta_jacobian(model, opt.params, prob.free, prob.low, prob.high, prob.delay, prob.D, prob.w,
+                                prob.valid, opt.solution)
+    N = varpro._normal_matrix(Jt, opt.design, prob.w, prob.valid)
+    Jf = varpro._full_jacobian(Jt, opt.design, prob.w, prob.valid).toarray()
+    np.testing.assert_allclose(Jf.T @ Jf, N, rtol=1e-10, atol=1e-10 * np.abs(N).max())
+    # an AR(1)-like correlation of the delays: R_bc = 0.5^|b - c|
+    n = DELAY.size
+    R = 0.5 ** np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
+    res = varpro.fit(model, D, err, DELAY, START_SEQ, correlation=R)
+    Minv, _ = varpro._constrained_inverse(N, len(prob.free), opt.design.curves, 2, Q.size)
+    C = np.kron(R, np.eye(Q.size))  # all points valid here
+    cov = Minv @ (Jf.T @ C @ Jf) @ Minv * res.error_scale
+    for i, name in enumerate(prob.free):
+        np.testing.assert_allclose(res.stderr[name], np.sqrt(cov[i, i]), rtol=1e-6)

@@ -34,6 +34,17 @@ correlation with every amplitude, and the amplitudes' errors. Otherwise theta's
 errors come from the Jacobian of the projected residual.
 Costs: the full matrix has (K n_q + J n_delay + n_g + p)^2 entries.
 
+Correlated delay bins
+---------------------
+Neighbouring delay bins share pump-off references, so their differences are
+correlated along delay: ``Cov(D_b(q), D_c(q)) = err_b(q) err_c(q) R_bc``
+(:mod:`movieproc.signals.covariance`). The fit itself stays an ordinary weighted
+fit (weights 1/err); with ``correlation=R`` the errors are the sandwich
+``M^-1 (J^T C J) M^-1`` (C = R kron I_nq, :mod:`movieproc.fitting.correlated`)
+scaled by the plain chi2 over its expectation under R (``correlated_dof``), and
+the per-bin-only errors (R = I) are kept beside them (``stderr_independent``).
+Without ``correlation`` both are the per-bin-only errors.
+
 These are linearized (asymptotic) errors. They describe the scatter well when every
 component is clearly above the noise; for a weak component with free curves (each
 free curve adds n_q linear unknowns that also fit noise) the chi2 surface in theta
@@ -46,9 +57,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize
+from scipy import optimize, sparse
 
 from movieproc.errors import DataError, InputError, MovieprocError, ParameterError
+from movieproc.fitting.correlated import correlated_dof, reduced_chi2, sandwich_covariance
+from movieproc.signals.covariance import check_correlation
 
 __all__ = ["LinearSolution", "solve_linear", "FitResult", "Problem", "Optimum", "Errors", "validate",
            "optimize_parameters", "parameter_errors", "flags", "fit", "BootstrapResult", "bootstrap",
@@ -268,6 +281,14 @@ class FitResult:
     bootstrap : dict
         Parameter name -> :class:`ParameterBootstrap`, filled by the caller from
         :func:`refit_replicates` / :func:`refit_resamples` (empty without a bootstrap).
+    stderr_independent, amplitudes_err_independent : dict
+        The same errors under independent delay bins (R = I), scaled by ``red_chi2``;
+        equal to ``stderr`` / ``amplitudes_err`` when no correlation was given.
+    error_model : str
+        What ``stderr`` assumes: ``"correlated bins"`` or ``"independent bins"``.
+    error_scale : float
+        The reduced chi2 that scaled ``stderr``: ``red_chi2`` for independent bins,
+        the plain chi2 over its expectation under the correlation otherwise.
     """
 
     params: dict
@@ -300,6 +321,10 @@ class FitResult:
     n_data: int = 0
     n_params: int = 0
     bootstrap: dict = field(default_factory=dict)
+    stderr_independent: dict = field(default_factory=dict)
+    amplitudes_err_independent: dict = field(default_factory=dict)
+    error_model: str = "independent bins"
+    error_scale: float = float("nan")
 
 
 # ----------------------------------------------------------------------------- fitting
@@ -352,6 +377,8 @@ class Problem:
     n_data, n_params, n_delays, n_shaping : int
         Data points; free parameters plus independent linear amplitudes; delays with
         data; free parameters plus amplitude profiles (what the delays must shape).
+    correlation : ndarray, shape (n_delay, n_delay), or None
+        Correlation R of the delay bins' differences (None: independent bins).
     """
 
     model: object
@@ -369,6 +396,7 @@ class Problem:
     n_params: int = 0
     n_delays: int = 0
     n_shaping: int = 0
+    correlation: np.ndarray | None = None
 
     def params_of(self, x):
         """All parameters with the free ones set to ``x``."""
@@ -410,7 +438,11 @@ class Optimum:
 
 @dataclass
 class Errors:
-    """Standard errors and correlations of a fit (scaled by the reduced chi2)."""
+    """Standard errors and correlations of a fit (scaled by a reduced chi2).
+
+    ``stderr``, ``amplitudes_err``, ``curves_err``, ``coef_err`` and ``correlation``
+    follow ``error_model``; the ``*_independent`` errors assume independent delay bins.
+    """
 
     stderr: dict
     correlation: np.ndarray
@@ -418,6 +450,10 @@ class Errors:
     amplitudes_err: dict
     curves_err: np.ndarray | None
     coef_err: np.ndarray | None
+    stderr_independent: dict = field(default_factory=dict)
+    amplitudes_err_independent: dict = field(default_factory=dict)
+    error_model: str = "independent bins"
+    error_scale: float = float("nan")
 
 
 def _check_parameters(model, p0, bounds, fixed):
@@ -448,7 +484,19 @@ def _check_parameters(model, p0, bounds, fixed):
     return names, free, bnd, {n: float(p0[n]) for n in names}
 
 
-def validate(model, diff, diff_err, delay, p0, bounds=None, fixed=()):
+def _check_correlation(correlation, n_delay):
+    """The bin correlation as a checked (n_delay, n_delay) array, or None."""
+    if correlation is None:
+        return None
+    R = np.asarray(correlation, dtype=float)
+    try:
+        return check_correlation(R, n_delay)
+    except ValueError as exc:
+        raise InputError("argument 'correlation'", str(exc),
+                         f"a ({n_delay}, {n_delay}) correlation matrix of the delays with unit diagonal") from None
+
+
+def validate(model, diff, diff_err, delay, p0, bounds=None, fixed=(), correlation=None):
     """Check a fit problem before any optimization; see :func:`fit` for the arguments.
 
     Returns
@@ -467,7 +515,7 @@ def validate(model, diff, diff_err, delay, p0, bounds=None, fixed=()):
     names, free, bnd, start = _check_parameters(model, p0, bounds, fixed)
     prob = Problem(model=model, diff=np.asarray(diff, float), D=D, w=w, valid=valid, delay=t, names=names,
                    free=free, start=start, low=np.array([bnd[n][0] for n in free]),
-                   high=np.array([bnd[n][1] for n in free]))
+                   high=np.array([bnd[n][1] for n in free]), correlation=_check_correlation(correlation, t.size))
     design0 = prob.design(start)  # the kinetics are shaped by the delays only
     K = 0 if design0.profiles is None else design0.profiles.shape[1]
     ng = 0 if design0.maps is None else design0.maps.shape[0]
@@ -519,44 +567,91 @@ def optimize_parameters(prob, *, max_nfev=None, jac="3-point", ftol=1e-10, xtol=
 
 
 def parameter_errors(prob, opt, linear_errors=True):
-    """Standard errors (scaled by the reduced chi2) and correlations at the optimum.
+    """Standard errors (scaled by a reduced chi2) and correlations at the optimum.
 
     With ``linear_errors`` the full covariance of (theta, linear amplitudes) is used
     (see the module notes); otherwise theta's errors come from the projected Jacobian.
+    With ``prob.correlation`` the errors are the sandwich under the bin correlation,
+    and the per-bin-only errors are kept in ``stderr_independent``.
 
     Returns
     -------
     Errors
     """
-    model, sol, red, free = prob.model, opt.solution, opt.red_chi2, prob.free
-    amplitudes_err = {n: np.nan for n in model.map_names}
-    curves_err = coef_err = None
     if linear_errors:
-        cov_theta, var, cov_small = _full_covariance(model, opt.params, free, prob.low, prob.high, prob.delay,
-                                                     prob.D, prob.w, prob.valid, opt.design, sol)
-        cov_theta, var, cov_corr = cov_theta * red, var * red, cov_small * red
-        nt, nq = prob.D.shape
-        K = 0 if sol.curves is None else sol.curves.shape[0]
-        J = 0 if sol.curve_coef is None else sol.curve_coef.shape[1]
-        if K:
-            curves_err = np.sqrt(var[: K * nq]).reshape(nq, K).T
-        if J:
-            coef_err = np.sqrt(var[K * nq: K * nq + nt * J]).reshape(nt, J)
-        if sol.map_coef.size:
-            amplitudes_err = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist(), strict=True))
-        corr_names = list(free) + list(model.map_names)
+        cov_ind, cov_cor, scale = _full_errors(prob, opt)
     else:
-        cov_theta = _inv_psd(opt.jacobian.T @ opt.jacobian) * red
-        cov_corr, corr_names = cov_theta, list(free)
-    p = len(free)
-    se = np.sqrt(np.clip(np.diag(cov_theta), 0, None)) if p else np.zeros(0)
-    se = np.where(np.isfinite(np.diag(cov_theta)), se, np.inf) if p else se
-    stderr = {n: (float(se[free.index(n)]) if n in free else np.nan) for n in prob.names}
+        cov_ind, cov_cor, scale = _projected_errors(prob, opt)
+    model, free = prob.model, prob.free
+    ind, cor = _split(prob, opt, cov_ind, linear_errors), _split(prob, opt, cov_cor, linear_errors)
+    corr_names = list(free) + (list(model.map_names) if linear_errors else [])
     with np.errstate(invalid="ignore", divide="ignore"):
-        dcorr = np.sqrt(np.diag(cov_corr))
-        corr = cov_corr / np.outer(dcorr, dcorr)
-    return Errors(stderr=stderr, correlation=corr, corr_names=corr_names, amplitudes_err=amplitudes_err,
-                  curves_err=curves_err, coef_err=coef_err)
+        dcorr = np.sqrt(np.diag(cor["small"]))
+        corr = cor["small"] / np.outer(dcorr, dcorr)
+    return Errors(stderr=cor["stderr"], correlation=corr, corr_names=corr_names, amplitudes_err=cor["amplitudes"],
+                  curves_err=cor["curves"], coef_err=cor["coef"], stderr_independent=ind["stderr"],
+                  amplitudes_err_independent=ind["amplitudes"],
+                  error_model="independent bins" if prob.correlation is None else "correlated bins",
+                  error_scale=float(scale))
+
+
+def _projected_errors(prob, opt):
+    """Covariances of theta (independent, correlated) from the projected Jacobian, and the error scale.
+
+    The scale is the plain reduced chi2 (the linear amplitudes are not in this Jacobian,
+    so its expectation under the correlation is not computed).
+    """
+    Jp, red = opt.jacobian, opt.red_chi2
+    cov_ind = _inv_psd(Jp.T @ Jp) * red
+    if prob.correlation is None or not prob.free or not np.all(np.isfinite(cov_ind)):
+        return cov_ind, cov_ind, red
+    return cov_ind, sandwich_covariance(Jp, prob.correlation, prob.valid, red_chi2=red), red
+
+
+def _full_errors(prob, opt):
+    """Covariances of (theta, linear amplitudes), independent and correlated, and the correlated error scale."""
+    des, sol, red = opt.design, opt.solution, opt.red_chi2
+    nq = prob.D.shape[1]
+    K = 0 if des.profiles is None else des.profiles.shape[1]
+    p = len(prob.free)
+    Jt = _theta_jacobian(prob.model, opt.params, prob.free, prob.low, prob.high, prob.delay, prob.D, prob.w,
+                         prob.valid, sol)
+    N = _normal_matrix(Jt, des, prob.w, prob.valid)
+    Minv, bad = _constrained_inverse(N, p, des.curves, K, nq)
+    cov_ind = _mark_undetermined(Minv @ N @ Minv, bad) * red
+    if prob.correlation is None:
+        return cov_ind, cov_ind, red
+    Jfull = _full_jacobian(Jt, des, prob.w, prob.valid)
+    rw = np.where(prob.valid, prob.w * (prob.D - sol.model), np.nan)
+    scale = reduced_chi2(rw, max(correlated_dof(Jfull, prob.correlation, prob.valid, bread_inverse=Minv), 1.0))
+    cov = sandwich_covariance(Jfull, prob.correlation, prob.valid, bread_inverse=Minv, red_chi2=scale)
+    return cov_ind, _mark_undetermined(cov, bad), scale
+
+
+def _split(prob, opt, cov, linear_errors):
+    """Standard errors of theta, amplitudes, curves and coefficients, and the (theta, beta) block, of one covariance."""
+    model, sol, free = prob.model, opt.solution, prob.free
+    p = len(free)
+    out = {"amplitudes": {n: np.nan for n in model.map_names}, "curves": None, "coef": None}
+    diag = np.diag(cov)
+    se = np.where(np.isfinite(diag[:p]), np.sqrt(np.clip(diag[:p], 0, None)), np.inf)
+    out["stderr"] = {n: (float(se[free.index(n)]) if n in free else np.nan) for n in prob.names}
+    if not linear_errors:
+        out["small"] = cov
+        return out
+    nt, nq = prob.D.shape
+    K = 0 if sol.curves is None else sol.curves.shape[0]
+    J = 0 if sol.curve_coef is None else sol.curve_coef.shape[1]
+    var = diag[p:]
+    if K:
+        out["curves"] = np.sqrt(var[: K * nq]).reshape(nq, K).T
+    if J:
+        out["coef"] = np.sqrt(var[K * nq: K * nq + nt * J]).reshape(nt, J)
+    if sol.map_coef.size:
+        out["amplitudes"] = dict(zip(model.map_names, np.sqrt(var[K * nq + nt * J:]).tolist(), strict=True))
+    sel = list(range(p)) + list(range(p + K * nq + nt * J, cov.shape[0]))
+    out["small"] = cov[np.ix_(sel, sel)]
+    return out
 
 
 def _at_bound(prob, opt):
@@ -604,7 +699,7 @@ def flags(prob, opt, errors):
 
 
 def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=None, linear_errors=True,
-        jac="3-point", ftol=1e-10, xtol=1e-10, gtol=1e-10):
+        jac="3-point", ftol=1e-10, xtol=1e-10, gtol=1e-10, correlation=None):
     """Fit a model to a (delay, q) difference map by variable projection.
 
     Runs :func:`validate`, :func:`optimize_parameters`, :func:`parameter_errors` and
@@ -636,6 +731,12 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
         Finite-difference scheme of the optimizer.
     ftol, xtol, gtol : float
         ``least_squares`` tolerances.
+    correlation : array_like, shape (n_delay, n_delay), optional
+        Correlation R of the rows' differences along delay (unit diagonal;
+        :func:`movieproc.signals.covariance.bin_correlation`), with
+        ``Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc``. The fit is
+        unchanged; the errors become the sandwich under R (module notes). Default:
+        independent rows.
 
     Returns
     -------
@@ -650,7 +751,7 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
         Too few delays for the number of parameters (before fitting), or a model
         that is not finite at the initial guess (its cause the model's own error).
     """
-    prob = validate(model, diff, diff_err, delay, p0, bounds=bounds, fixed=fixed)
+    prob = validate(model, diff, diff_err, delay, p0, bounds=bounds, fixed=fixed, correlation=correlation)
     opt = optimize_parameters(prob, max_nfev=max_nfev, jac=jac, ftol=ftol, xtol=xtol, gtol=gtol)
     errors = parameter_errors(prob, opt, linear_errors)
     at_bound, warnings = flags(prob, opt, errors)
@@ -666,7 +767,10 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
                      residual=np.where(prob.valid, prob.diff - sol.model, np.nan), populations=opt.design.populations,
                      species_names=list(getattr(model, "species_names", [])), delay=prob.delay.copy(),
                      converged=opt.converged, message=opt.message, nfev=opt.nfev, at_bound=at_bound,
-                     warnings=warnings, n_data=prob.n_data, n_params=int(prob.n_params))
+                     warnings=warnings, n_data=prob.n_data, n_params=int(prob.n_params),
+                     stderr_independent=errors.stderr_independent,
+                     amplitudes_err_independent=errors.amplitudes_err_independent, error_model=errors.error_model,
+                     error_scale=errors.error_scale)
 
 
 def _inv_psd(N):
@@ -755,11 +859,18 @@ def _normal_matrix(Jt, des, w, valid):
     return np.triu(N) + np.triu(N, 1).T
 
 
-def _constrained_covariance(N, p, G, K, nq):
-    """Covariance M^-1 N M^-1 of the estimate under the convention (curves orthogonal to the solvent curves).
+def _constrained_inverse(N, p, G, K, nq):
+    """Inverse M^-1 of M = N + L^T L under the convention (curves orthogonal to the solvent curves).
 
-    M = N + L^T L, L the constraint rows sum_q G_j(q) B_k(q) = 0 (scaled like the B block);
-    directions the data do not determine get infinite variance.
+    L holds the constraint rows sum_q G_j(q) B_k(q) = 0 (scaled like the B block); the
+    covariance of the constrained estimate is M^-1 N M^-1 (for independent bins).
+
+    Returns
+    -------
+    Minv : ndarray, shape (n, n)
+        Pseudo-inverse (directions the data do not determine left out).
+    bad : ndarray of bool, shape (n,)
+        Unknowns taking part in a direction the data do not determine.
     """
     M = N.copy()
     J = 0 if G is None else G.shape[0]
@@ -775,32 +886,59 @@ def _constrained_covariance(N, p, G, K, nq):
     lam, V = np.linalg.eigh(M / np.outer(d, d))
     keep = lam > PINV_RCOND * lam.max()
     Minv = (V[:, keep] / lam[keep]) @ V[:, keep].T / np.outer(d, d)
-    cov = Minv @ N @ Minv
+    bad = np.zeros(N.shape[0], dtype=bool)
     if not np.all(keep):
-        # Directions the data do not determine: make them visible as infinite variance.
         null = V[:, ~keep] / d[:, None]
         bad = np.any(np.abs(null) > NULL_SHARE * np.abs(null).max(), axis=1)
-        cov[bad, bad] = np.inf
+    return Minv, bad
+
+
+def _mark_undetermined(cov, bad):
+    """``cov`` with infinite variance on the unknowns the data do not determine."""
+    cov = np.array(cov, dtype=float)
+    cov[bad, bad] = np.inf
     return cov
 
 
-def _full_covariance(model, phat, free, lo, hi, t, D, w, valid, des, sol):
-    """Gauss-Newton covariance (unscaled) of (theta, linear amplitudes).
+def _full_jacobian(Jt, des, w, valid):
+    """Error-weighted Jacobian of the model in (theta, B, s, beta) on the valid points, sparse.
 
-    Returns the theta block (p, p), the diagonal of the linear block (n_L,) in the
-    order [B (q-major, K), s (t-major, J), beta], and the covariance of
-    (theta, beta) for the correlation matrix.
+    Rows: valid points in ``valid.ravel()`` order (delay-major); columns in the order of
+    :func:`_normal_matrix` (theta, B q-major with K per q, s delay-major with J per delay, beta).
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix, shape (n_valid, p + K n_q + n_delay J + n_g)
     """
-    nt, nq = D.shape
-    K = 0 if des.profiles is None else des.profiles.shape[1]
-    J = 0 if des.curves is None else des.curves.shape[0]
-    p = len(free)
-    Jt = _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol)
-    N = _normal_matrix(Jt, des, w, valid)
-    cov = _constrained_covariance(N, p, des.curves, K, nq)
-    nL = N.shape[0] - p
-    sel = list(range(p)) + list(range(p + K * nq + nt * J, p + nL))
-    return cov[:p, :p], np.diag(cov)[p:], cov[np.ix_(sel, sel)]
+    nt, nq = w.shape
+    C, X, G = des.profiles, des.maps, des.curves
+    K = 0 if C is None else C.shape[1]
+    J = 0 if G is None else G.shape[0]
+    ng = 0 if X is None else X.shape[0]
+    p = Jt.shape[1]
+    tt, qq = np.meshgrid(np.arange(nt), np.arange(nq), indexing="ij")
+    row = (tt * nq + qq).ravel()
+    rows, cols, vals = [], [], []
+    if K:
+        for k in range(K):
+            rows.append(row)
+            cols.append(p + qq.ravel() * K + k)
+            vals.append((w * C[:, k][:, None]).ravel())
+    if J:
+        for j in range(J):
+            rows.append(row)
+            cols.append(p + K * nq + tt.ravel() * J + j)
+            vals.append((w * G[j][None, :]).ravel())
+    for g in range(ng):
+        rows.append(row)
+        cols.append(np.full(row.size, p + K * nq + nt * J + g))
+        vals.append((w * X[g]).ravel())
+    n_cols = p + K * nq + nt * J + ng
+    lin = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                            shape=(nt * nq, n_cols)) if vals else sparse.csr_matrix((nt * nq, n_cols))
+    lin = lin[np.flatnonzero(valid.ravel())]
+    theta = sparse.csr_matrix(np.hstack([Jt, np.zeros((Jt.shape[0], n_cols - p))]))
+    return (theta + lin).tocsr()
 
 
 # ----------------------------------------------------------------------------- bootstrap

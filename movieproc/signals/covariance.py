@@ -16,7 +16,7 @@ With a per-shot noise variance s(q)^2 common to the shots involved,
 with a_bs the coefficient of shot s in D_b: :func:`bin_coefficient_overlap`
 gives M, :func:`bin_correlation` the correlation R, and the covariance used by
 the fits is the separable model ``err_b(q) err_c(q) R_bc`` with the per-bin
-errors of :func:`movieproc.signals.differences.bin_errors` (docs/covariance.md).
+errors of :func:`movieproc.signals.differences.bin_errors` (docs/METHODS.md, section 6c).
 :func:`whiten` decorrelates residuals along the delay axis with R.
 
 :func:`bootstrap_chunk` and :func:`bootstrap_replicates` are a Poisson bootstrap

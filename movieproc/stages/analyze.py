@@ -37,6 +37,7 @@ from ..errors import ConfigError, DataError, InputError
 from ..fitting import structure, varpro
 from ..fitting.models import SpeciesModel, TrajectoryModel, species_with_signal
 from ..io import store
+from ..io.tables import read_curve_table
 from ..scattering import geometry, realspace
 from ..signals import scaling, svd
 from ..signals.solvent import fit_solvent, solvent_basis
@@ -90,6 +91,9 @@ class Data:
     units : str
     models : zarr group or None
         The store of the ``scatter`` stage.
+    correlation : ndarray, shape (n_delay, n_delay), or None
+        Correlation of the bins' differences along delay (``delay_correlation``), None
+        when the binned store has none (errors then assume independent bins).
     """
 
     path: Path
@@ -103,6 +107,7 @@ class Data:
     boot: np.ndarray | None
     units: str
     models: Any
+    correlation: np.ndarray | None = None
 
 
 def _one(value):
@@ -126,27 +131,20 @@ def read_data(inputs) -> Data:
                 err=store.read(b, "diff_err").astype(float), low=store.read(b, "low_count"),
                 off_mean=store.read(b, "off_mean").astype(float), spread=store.read(b, "delay_spread"),
                 boot=store.read(b, "diff_boot").astype(float) if "diff_boot" in b else None,
-                units=b["diff"].attrs.get("units", ""), models=models)
+                units=b["diff"].attrs.get("units", ""), models=models,
+                correlation=store.read(b, "delay_correlation").astype(float) if "delay_correlation" in b else None)
 
 
 def read_differentials(path, q):
-    """Solvent differentials from a CSV (q, dS/dT, dS/drho), interpolated on ``q``.
+    """Solvent differentials (columns q, dS/dT[, dS/drho]; comma- or whitespace-separated) interpolated on ``q``.
 
     Returns a dict ``{"dT": (nq,), "drho": (nq,)}`` (``drho`` only if the file has a third column).
     """
-    path = Path(path)
-    if not path.exists():
-        raise InputError(path, "no such file",
-                         "a CSV with columns q (1/Å), dS/dT, dS/drho (config solvent.differentials)")
-    try:
-        table = np.loadtxt(path, delimiter=",", comments="#", ndmin=2)
-    except ValueError as exc:
-        raise InputError(path, f"unreadable numbers ({exc})", "comma-separated columns q, dS/dT[, dS/drho]") from None
-    if table.shape[1] < 2 or not np.all(np.isfinite(table)) or np.any(np.diff(table[:, 0]) <= 0):
-        raise InputError(path, f"a table of shape {table.shape}", "finite columns q (increasing), dS/dT[, dS/drho]")
+    what = "columns q (1/Å), dS/dT[, dS/drho] (config solvent.differentials)"
+    table = read_curve_table(path, min_columns=2, max_columns=3, what=what)
     if q[0] < table[0, 0] - 1e-9 or q[-1] > table[-1, 0] + 1e-9:
         raise InputError(path, f"q from {table[0, 0]:.3g} to {table[-1, 0]:.3g} 1/Å",
-                         f"a q range covering the data's {q[0]:.3g}-{q[-1]:.3g} 1/Å")
+                         f"a q range covering the data's {q[0]:.3g}-{q[-1]:.3g} 1/Å (config solvent.differentials)")
     out = {"dT": np.interp(q, table[:, 0], table[:, 1])}
     if table.shape[1] > 2:
         out["drho"] = np.interp(q, table[:, 0], table[:, 2])
@@ -182,7 +180,7 @@ def analyze(data: Data, config: dict, warnings: Warnings):
     result["realspace"] = _realspace(config["realspace"], data, solute, use, arrays, solute_units)
     result["fit"] = fit
     result["svd_count"] = _svd(config["svd"], data, solute, usable, use, arrays, warnings)
-    if data.models is not None and "traj_dS" in data.models and fcfg["mode"] != "none":
+    if _has_trajectory(data.models) and fcfg["mode"] != "none":
         # excited fraction at each delay from the global fit: alpha times the IRF-convolved survival
         amplitude = None
         if fit is not None and fcfg["mode"] == "trajectory":
@@ -190,6 +188,11 @@ def analyze(data: Data, config: dict, warnings: Warnings):
         structures, result["geometry_units"] = _structures(fcfg, data, use, basis.curves, warnings, amplitude)
         arrays.update(structures)
     return arrays, result
+
+
+def _has_trajectory(models):
+    """Whether the model store holds trajectory frames (species structures alone have none)."""
+    return models is not None and "traj_dS" in models and models["traj_dS"].shape[0] > 0
 
 
 def _absolute_scale(config, data):
@@ -331,7 +334,7 @@ def _rows(values, use):
 
 
 def _trajectory_model(fcfg, models, basis, spread):
-    if models is None or "traj_dS" not in models:
+    if not _has_trajectory(models):
         raise ConfigError("fit.mode", "'trajectory' without model.trajectory", "a trajectory in model.trajectory")
     times = store.read(models, "frame_time")
     if not np.all(np.isfinite(times)):
@@ -365,20 +368,43 @@ def _species_model(fcfg, models, basis, spread):
     return model, p0
 
 
+#: Smallest eigenvalue of the used bins' correlation still accepted (below: a singular covariance).
+MIN_CORRELATION_EIGENVALUE = 1e-10
+
+
+def _correlation(data, use):
+    """The used bins' correlation along delay (None, with a log line, when the binned store has none)."""
+    if data.correlation is None:
+        log.info("%s has no delay_correlation: fit errors ignore the correlation between delay bins "
+                 "(neighbouring bins share pump-off references)", data.path)
+        return None
+    if data.correlation.shape != (use.size, use.size):
+        raise InputError(f"{data.path}:delay_correlation", f"shape {data.correlation.shape}",
+                         f"({use.size}, {use.size}), one row and column per delay bin")
+    R = data.correlation[np.ix_(use, use)]
+    if not np.all(np.isfinite(R)) or np.linalg.eigvalsh(R).min() <= MIN_CORRELATION_EIGENVALUE:
+        raise ConfigError("differences.references", f"a singular covariance between delay bins in {data.path} "
+                          "(delay_correlation not positive definite)",
+                          "more references per pump-on shot, or more pump-off shots, so that the bins' "
+                          "differences are not linear combinations of each other")
+    return R
+
+
 def _global_fit(fcfg, data, use, basis, warnings):
     """The global fit of the used rows, its flags as warnings, and its bootstrap errors."""
     spread = (data.delay[use], data.spread[use])
     make = _trajectory_model if fcfg["mode"] == "trajectory" else _species_model
     model, p0 = make(fcfg, data.models, basis, spread)
     diff, err, delay = data.diff[use], data.err[use], data.delay[use]
-    res = varpro.fit(model, diff, err, delay, p0)
+    res = varpro.fit(model, diff, err, delay, p0, correlation=_correlation(data, use))
     for w in res.warnings:
         warnings.add(f"fit: {w}")
     if not res.converged:
         warnings.add(f"fit did NOT converge ({res.message}); parameters are not reliable")
     if res.at_bound:
         warnings.add(f"fit parameters at a bound: {', '.join(res.at_bound)}")
-    text = ", ".join(f"{k} = {v:.4g} ± {res.stderr.get(k, np.nan):.2g}" for k, v in res.params.items())
+    text = f"(errors for {res.error_model}) "
+    text += ", ".join(f"{k} = {v:.4g} ± {res.stderr.get(k, np.nan):.2g}" for k, v in res.params.items())
     text += "".join(f", {k} = {v:.4g} ± {res.amplitudes_err.get(k, np.nan):.2g}" for k, v in res.amplitudes.items())
     log.info("%s fit: %s; reduced chi2 %.3f", fcfg["mode"], text, res.red_chi2)
     if data.boot is not None:
@@ -447,17 +473,35 @@ DIMS = {
 def _fit_attrs(fit, config):
     """Attributes of a fit: parameters with errors (and bootstrap errors), chi2, flags."""
     params = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
+                  "error_independent_bins": float(fit.stderr_independent.get(k, np.nan)),
                   "units": "ps" if k in TIME_PARAMETERS or k.startswith("lifetime_") else ""}
               for k, v in fit.params.items()}
     for k, v in fit.amplitudes.items():
         params[k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
+                     "error_independent_bins": float(fit.amplitudes_err_independent.get(k, np.nan)),
                      "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
     for k, info in fit.bootstrap.items():
         params[k]["bootstrap_error"] = info.error
         params[k]["bootstrap"] = f"{info.replicates} replicates over {info.over}"
     return {"fit_mode": config["fit"]["mode"], "fit_parameters": params, "fit_reduced_chi2": float(fit.red_chi2),
             "fit_converged": bool(fit.converged), "fit_at_bound": list(fit.at_bound),
-            "fit_species": list(fit.species_names), "fit_correlation_names": list(fit.corr_names)}
+            "fit_species": list(fit.species_names), "fit_correlation_names": list(fit.corr_names),
+            "fit_errors": _error_note(fit)}
+
+
+def _error_note(fit):
+    """What the reported errors assume (attrs ``fit_errors``)."""
+    if fit.error_model == "correlated bins":
+        assumes = ("standard errors of an ordinary weighted fit under differences correlated between delay bins "
+                   "(shared pump-off references): Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc with R the "
+                   "binned store's delay_correlation, no correlation between q points; sandwich covariance scaled by "
+                   "chi2 over its expectation under R; linearized (asymptotic)")
+    else:
+        assumes = ("standard errors assuming independent delay bins (no delay_correlation in the binned store), "
+                   "scaled by the reduced chi2; too small where neighbouring bins share pump-off references; "
+                   "linearized (asymptotic)")
+    return {"model": fit.error_model, "assumes": assumes, "scale_reduced_chi2": float(fit.error_scale),
+            "error_independent_bins": "the same errors with the bins taken as independent (per-bin errors only)"}
 
 
 def _array_attrs(name, result):
