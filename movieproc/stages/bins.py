@@ -10,7 +10,8 @@ import numpy as np
 from ..errors import DataError
 from ..io import shotstore, store
 from ..shots.binning import bin_delays, make_edges
-from .common import Warnings, config_errors, now
+from .keys import config_keys
+from .common import Warnings, now
 
 log = logging.getLogger("movieproc.bin")
 
@@ -42,7 +43,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     use = keep & shots.table["pump_on"]
     del keep
     delay = store.read(store.open_group(inputs["delays"], "delays"), "delay", inputs["delays"])[use]
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         edges = make_edges(delay, binning["mode"], width=binning.get("width_ps"), start=binning.get("start_ps"),
                            stop=binning.get("stop_ps"), count=binning.get("count"), edges=binning.get("edges_ps"))
     bins = bin_delays(delay, edges)

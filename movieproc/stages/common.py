@@ -2,13 +2,10 @@
 
 from __future__ import annotations
 
-import contextlib
 import datetime as _dt
 import logging
 import platform
-import re
 
-from ..errors import ConfigError
 
 log = logging.getLogger("movieproc")
 
@@ -63,37 +60,3 @@ def now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
-def config_value(config: dict, key: str):
-    """The value of a dotted config key (``timing.sign``) in ``config``; None where it is absent."""
-    value = config
-    for part in key.split("."):
-        if not isinstance(value, dict) or part not in value:
-            return None
-        value = value[part]
-    return value
-
-
-@contextlib.contextmanager
-def config_errors(keys: dict, config: dict):
-    """Re-raise a core's ValueError or TypeError about one of its parameters as a ConfigError.
-
-    Cores name their own parameters: their messages start with the parameter's
-    name (``"sign must be +1 or -1"``). ``keys`` maps those names to the
-    config keys that set them (one dict per stage, its ``CONFIG_KEYS``); an
-    error about a parameter not in ``keys`` passes unchanged.
-
-    Parameters
-    ----------
-    keys : dict of str to str
-        Core parameter name -> dotted config key.
-    config : dict
-        The stage's config, for the value found.
-    """
-    try:
-        yield
-    except (ValueError, TypeError) as exc:
-        match = re.match(r"\s*([A-Za-z_][A-Za-z0-9_]*)", str(exc))
-        key = keys.get(match.group(1)) if match else None
-        if key is None:
-            raise
-        raise ConfigError(key, repr(config_value(config, key)), f"a usable value ({exc})") from exc

@@ -12,7 +12,8 @@ from ..io import shotstore, store
 from ..shots.timing import FS_PER_PS, corrected_delay, projected_signal, sign_check
 from ..signals.differences import nearest_references
 from ..signals.normalize import normalize
-from .common import Warnings, config_errors, now
+from .keys import config_keys
+from .common import Warnings, now
 
 log = logging.getLogger("movieproc.time")
 
@@ -51,7 +52,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     table = shotstore.open_shots(inputs["shots"]).table
     stage_delay, edge = table["stage_delay"], table["timing_edge"]
     delay = np.empty(stage_delay.size)
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         for a in range(0, delay.size, BLOCK_SHOTS):  # elementwise: blocks bound the temporaries
             delay[a:a + BLOCK_SHOTS] = corrected_delay(stage_delay[a:a + BLOCK_SHOTS], edge[a:a + BLOCK_SHOTS],
                                                        timing["calibration_fs"], timing["time_zero_ps"],
@@ -115,7 +116,7 @@ def check_sign(shots_path, selection_path, config: dict, window_ps=1.0):
         raise DataError(f"too few shots later than {SIGNAL_AFTER_FRACTION * window_ps} ps to define the signal "
                         "for the sign check")
     rows = np.unique(np.concatenate([idx, refs.ravel()]))
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         curves = normalize(shots.rows(rows), shots.q, differences["normalization"], differences["norm_q_range"])
         values = projected_signal(curves[np.searchsorted(rows, idx)], curves[np.searchsorted(rows, refs)], after)
         res = sign_check(table["stage_delay"][idx], table["timing_edge"][idx], values, timing["calibration_fs"],

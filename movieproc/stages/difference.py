@@ -25,7 +25,8 @@ from ..parallel import chunk_ranges, map_ranges
 from ..signals import covariance
 from ..signals.differences import bin_errors, difference_sums, nearest_references, shared_factor_from_gram
 from ..signals.normalize import normalize
-from .common import Warnings, config_errors, now
+from .keys import config_keys
+from .common import Warnings, now
 
 log = logging.getLogger("movieproc.difference")
 
@@ -98,7 +99,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     bins = store.open_group(inputs["bins"], "bins")
     index, edges = store.read(bins, "index", inputs["bins"]), store.read(bins, "edges", inputs["bins"])
     nbins, k = edges.size - 1, differences["references"]
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         on_idx, refs = _references(shots, keep, index, differences, warnings)
         on_bin = index[on_idx]
         del keep, index

@@ -14,7 +14,8 @@ import numpy as np
 
 from ..io import runfile, shotstore, store
 from ..parallel import chunk_ranges, map_ranges
-from .common import Warnings, config_errors, now, versions
+from .keys import config_keys
+from .common import Warnings, now, versions
 
 log = logging.getLogger("movieproc.ingest")
 
@@ -60,7 +61,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         "checksums": {str(f): shotstore.file_checksum(f) for f in info.files},
         "counts": info.counts, "written": now(), "versions": versions(), "warnings": warnings,
     }
-    with store.atomic_path(out) as tmp, config_errors(CONFIG_KEYS, config):
+    with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
         group = shotstore.create(tmp, info.q, table, compute["chunk_shots"], attrs=attrs)
         work = partial(_copy_range, info=info, target=group["curves"])
         map_ranges(work, chunk_ranges(info.n_shots, compute["chunk_shots"]), compute["workers"],

@@ -43,7 +43,8 @@ from ..detector import anisotropy, corrections, curves, energy, geometry, integr
 from ..errors import ConfigError, InputError
 from ..io import runfile, shotstore, store
 from ..parallel import chunk_ranges, map_ranges
-from .common import Warnings, config_errors, now, versions
+from .keys import config_keys
+from .common import Warnings, now, versions
 
 log = logging.getLogger("movieproc.integrate")
 
@@ -394,7 +395,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
                          "detector frames (N, ny, nx) for the integrate stage (curves go through ingest)")
     warnings = Warnings("integrate", log)
     table = runfile.read_table(info)
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         photon, origins = _photon_energies(info, table, detector, warnings)
         log.info("run of %d shots in %d file(s), frames %s (%s); photon energy %.4f-%.4f keV (%s)",
                  info.n_shots, len(info.files), " x ".join(str(v) for v in info.frame_shape or ()), info.data_dtype,
@@ -409,7 +410,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         "pixels_left_out": setup.reasons, "pixels_used": setup.used, "geometry_check": ring,
         "written": now(), "versions": versions(),
     }
-    with store.atomic_path(out) as tmp, config_errors(CONFIG_KEYS, config):
+    with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
         group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon),
                                      int(compute["chunk_shots"]), attrs)
         excluded = _integrate_all(info, setup, paths, compute, warnings)

@@ -1,19 +1,37 @@
 """From a core's parameter names to the config keys a user sets.
 
-Numeric cores raise :class:`movieproc.errors.ParameterError` naming their own
-parameters (``p0.sigma``, ``transitions``); each stage keeps ONE dict from those
-names to its config keys and runs its cores inside :func:`config_keys`, so an
-error a user sees always names a key of the config schema.
+Numeric cores name their own parameters, never config keys: preferably with
+:class:`movieproc.errors.ParameterError` (``p0.sigma``, ``transitions``), or with a
+plain ``ValueError``/``TypeError`` whose message starts with the parameter's name
+(``"sign must be +1 or -1"``). Each stage keeps ONE dict from those names to its
+config keys (its ``CONFIG_KEYS``) and runs its cores inside :func:`config_keys`, so an
+error a user sees always names a key of the config schema (tests walk every dict
+against the schema).
 """
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
+from typing import Any
 
 from ..errors import ConfigError, ParameterError
 
-__all__ = ["config_key", "config_keys"]
+__all__ = ["config_key", "config_keys", "config_value"]
+
+#: The parameter name a plain ValueError/TypeError message of a core starts with.
+_LEADING_NAME = re.compile(r"\s*([A-Za-z_][A-Za-z0-9_.]*)")
+
+
+def config_value(config: Mapping[str, Any] | None, key: str):
+    """The value of a dotted config key (``timing.sign``) in ``config``; None where it is absent."""
+    value: Any = config
+    for part in key.split("."):
+        if not isinstance(value, Mapping) or part not in value:
+            return None
+        value = value[part]
+    return value
 
 
 def config_key(parameter: str, keys: Mapping[str, str]) -> str | None:
@@ -42,22 +60,36 @@ def _parameter_error(exc: BaseException) -> ParameterError | None:
 
 
 @contextmanager
-def config_keys(keys: Mapping[str, str]) -> Iterator[None]:
-    """Re-raise a core's ParameterError (or an error caused by one) as a ConfigError.
+def config_keys(keys: Mapping[str, str], config: Mapping[str, Any] | None = None) -> Iterator[None]:
+    """Re-raise a core's error about one of its parameters as a ConfigError naming the config key.
 
     Parameters
     ----------
     keys : mapping
-        Core parameter name -> config key (``"section.key"``).
+        Core parameter name -> config key (``"section.key"``); an entry ending in
+        ``*`` matches every parameter with that prefix.
+    config : mapping, optional
+        The stage's config, to quote the value found when a plain ValueError or
+        TypeError (which carries no value) is mapped.
 
-    A parameter missing from ``keys`` is not something a config sets (a bug of the
-    calling stage): the error passes unchanged.
+    A ParameterError (or an error caused by one) is mapped by its ``parameter``; a
+    plain ValueError/TypeError by the name its message starts with. An error about a
+    parameter missing from ``keys`` is not something a config sets (a bug of the
+    calling stage): it passes unchanged.
     """
     try:
         yield
     except Exception as exc:
         perr = _parameter_error(exc)
-        key = config_key(perr.parameter, keys) if perr is not None else None
-        if perr is None or key is None:
+        if perr is not None:
+            key = config_key(perr.parameter, keys)
+            if key is None:
+                raise
+            raise ConfigError(key, perr.found, perr.expected) from exc
+        if not isinstance(exc, (ValueError, TypeError)):
             raise
-        raise ConfigError(key, perr.found, perr.expected) from exc
+        match = _LEADING_NAME.match(str(exc))
+        key = config_key(match.group(1), keys) if match else None
+        if key is None:
+            raise
+        raise ConfigError(key, repr(config_value(config, key)), f"a usable value ({exc})") from exc

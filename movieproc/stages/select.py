@@ -13,7 +13,8 @@ from ..io import shotstore, store
 from ..parallel import chunk_ranges, map_ranges
 from ..shots import selection
 from ..signals.normalize import normalize
-from .common import Warnings, config_errors, now
+from .keys import config_keys
+from .common import Warnings, now
 
 log = logging.getLogger("movieproc.select")
 
@@ -106,7 +107,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     sel = config["selection"]
     warnings = Warnings("select", log)
     shots = shotstore.open_shots(inputs["shots"])
-    with config_errors(CONFIG_KEYS, config):
+    with config_keys(CONFIG_KEYS, config):
         flags, score = _flags(shots, sel, config["differences"], config["compute"], warnings)
     counts = _counts(flags, shots.table["pump_on"], warnings)
     with store.atomic_path(out) as tmp:
