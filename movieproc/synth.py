@@ -267,7 +267,9 @@ def simulate_shots(scenario: dict, n_shots: int, rng: np.random.Generator):
     c0, c1, c2 = tim["calibration_fs"]
     p_edge0 = c0 + c1 * tim["edge_at_time_zero"] + c2 * tim["edge_at_time_zero"] ** 2
     target = p_edge0 + tim["sign"] * measured_fs
-    edge = (-c1 + np.sqrt(c1 * c1 - 4 * c2 * (c0 - target))) / (2 * c2)
+    # the root of c2 e^2 + c1 e + (c0 - target) = 0 near the linear solution, in the form that
+    # stays finite for c2 = 0 (a linear calibration) and avoids cancellation for small c2
+    edge = 2 * (target - c0) / (c1 + np.sqrt(c1 * c1 - 4 * c2 * (c0 - target)))
     missing = rng.random(n) < tim["missing_fraction"]
     edge[missing] = np.nan
     amplitude[missing] = rng.uniform(0, 0.005, missing.sum())
