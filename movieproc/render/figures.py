@@ -11,6 +11,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import TwoSlopeNorm  # noqa: E402
+from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
 
 
 def _robust_limit(values, pct=99.0):
@@ -131,9 +132,13 @@ def _population_panel(ax, curves, delay):
     ax.legend(fontsize=7, loc="center left")
 
 
+#: Per-delay coefficients that are nuisance terms of the fit, not solvent physics: not drawn.
+NUISANCE_TERMS = ("normalization", "energy")
+
+
 def _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units):
     for j, name in enumerate(terms):
-        if name in ("normalization", "energy"):  # nuisance terms
+        if name in NUISANCE_TERMS:
             continue
         e = None if solvent_err is None else solvent_err[:, j]
         ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=f"{name} (bars: ±1 s.e.)")
@@ -162,13 +167,16 @@ def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), 
     note : str
         Said in the figure (e.g. "no fit configured"), above the first panel.
     """
+    if solvent_coef is not None and not any(name not in NUISANCE_TERMS for name in terms):
+        solvent_coef = None  # only nuisance terms (or none): no solvent panel
     panels = [k for k, v in (("population", curves), ("solvent", solvent_coef), ("chi2", chi2)) if v is not None]
     rows = max(1, len(panels))
     fig, axes = plt.subplots(rows, 1, figsize=(7, 2.4 * rows + 0.8), sharex=True, layout="constrained")
     axes = np.atleast_1d(axes)
     if not panels:
         axes[0].axis("off")
-        axes[0].text(0.5, 0.5, note or "nothing to show", ha="center", va="center", fontsize=11)
+        text = "\n".join(filter(None, [note, "no per-delay solvent terms fitted", "no χ² per delay"]))
+        axes[0].text(0.5, 0.5, text, ha="center", va="center", fontsize=11)
         fig.suptitle(title or "kinetics")
         return fig
     for ax, kind in zip(axes, panels, strict=True):
@@ -279,7 +287,10 @@ def svd_summary(q, delay, values, noise, u, v, n_significant, threshold=None, st
         import textwrap
 
         fig.text(0.01, 0.005, "\n".join(textwrap.wrap(decision, 190)), fontsize=7, va="bottom")
-        fig.get_layout_engine().set(rect=(0, 0.1, 1, 0.9))
+        engine = fig.get_layout_engine()
+        if not isinstance(engine, ConstrainedLayoutEngine):  # the figure is made with layout="constrained"
+            raise RuntimeError(f"SVD figure: expected the constrained layout engine, got {type(engine).__name__}")
+        engine.set(rect=(0, 0.1, 1, 0.9))
     fig.suptitle(title or "SVD of the solute difference")
     return fig
 
