@@ -138,8 +138,8 @@ def plot(cal, image: np.ndarray, mask, path: Path):
     ax1.set_xlabel("azimuth phi (deg)")
     ax1.set_ylabel("residual 2theta - 2theta_hkl (millidegrees)")
     ax1.set_xlim(-180, 180)
-    ax1.set_title(f"D = {g.distance_mm:.3f} mm, tilt = ({g.tilt_deg[0]:.3f}, {g.tilt_deg[1]:.3f}) deg; "
-                  "dashed: threshold (on ring sector medians)")
+    ax1.set_title(f"D = {g.distance_mm:.3f} mm, tilt = ({g.tilt_deg[0]:.3f}, {g.tilt_deg[1]:.3f}) deg\n"
+                  "points: single ring pixels; dashed: threshold (applies to ring sector medians)", fontsize=10)
     ax1.legend(fontsize=7, markerscale=4, ncol=2, loc="upper right")
     fig.tight_layout()
     fig.savefig(path, dpi=110, format="png")
