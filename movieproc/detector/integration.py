@@ -123,7 +123,8 @@ class BinSums(NamedTuple):
     excluded: np.ndarray
 
 
-class Integrated(NamedTuple):
+@dataclass(frozen=True)
+class Integrated:
     """Azimuthally averaged frames.
 
     Attributes
@@ -249,8 +250,7 @@ def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimut
         phi = pixel_map(azimuth, "azimuth")
         sector = np.searchsorted(sector_edges, phi, side="right") - 1
         valid &= (sector >= 0) & (sector < sector_edges.size - 1)
-    channels = [np.ones(t.size)] + [pixel_map(r, "regressor") for r in regressors]
-    channels = np.array(channels)
+    channels = np.array([np.ones(t.size)] + [pixel_map(r, "regressor") for r in regressors])
     valid &= np.all(np.isfinite(channels), axis=0)
     dark_flat = None
     if dark is not None:

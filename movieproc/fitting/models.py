@@ -89,8 +89,9 @@ class _BinWidth:
     """
 
     def __init__(self, delay=None, spread=None):
+        self.delay: np.ndarray | None = None
+        self.spread: np.ndarray | None = None
         if spread is None:
-            self.delay = self.spread = None
             return
         d = np.asarray(delay, dtype=float)
         sp = np.asarray(spread, dtype=float)
@@ -103,7 +104,7 @@ class _BinWidth:
     def evaluate(self, fn, delay, sigma):
         """``fn(delay_subset, width)`` evaluated with each delay's effective width; rows stacked."""
         delay = np.asarray(delay, dtype=float)
-        if self.spread is None:
+        if self.delay is None or self.spread is None:  # set together in __init__
             return fn(delay, sigma)
         idx = np.clip(np.searchsorted(self.delay, delay), 0, self.delay.size - 1)
         prev = np.clip(idx - 1, 0, self.delay.size - 1)
@@ -261,7 +262,7 @@ class SpeciesModel:
         k = np.array([1.0 / params[f"lifetime_{i + 1}"] for i in range(self.n_lifetimes)])
         if self.scheme == "sequential":
             return kinetics.sequential_rate_matrix(k)
-        if self.scheme == "network":
+        if self.transitions is not None:  # set for the network scheme only
             n = len(self.species_names)
             K = np.zeros((n, n))
             for (i, j), rate in zip(self.transitions, k, strict=True):

@@ -55,12 +55,14 @@ parameters with :func:`bootstrap` or a chi2 scan.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from scipy import optimize, sparse
 
 from movieproc.errors import DataError, InputError, MovieprocError, ParameterError
 from movieproc.fitting.correlated import correlated_dof, reduced_chi2, sandwich_covariance
+from movieproc.fitting.models import SpeciesModel, TrajectoryModel
 from movieproc.signals.covariance import check_correlation
 
 __all__ = ["LinearSolution", "solve_linear", "FitResult", "Problem", "Optimum", "Errors", "validate",
@@ -217,7 +219,7 @@ def solve_linear(design, D, w):
         z = _sym_pinv_solve(Azz, bz) if nz else np.zeros(0)
     S = z[: nt * J].reshape(nt, J) if J else None
     beta = z[nt * J:]
-    if K and J:
+    if B is not None and S is not None:  # K profiles and J solvent curves
         # Convention: species curves orthogonal to the solvent curves (model unchanged).
         A = np.linalg.solve(G @ G.T, G @ B.T).T  # (K, J)
         B = B - A @ G
@@ -381,7 +383,7 @@ class Problem:
         Correlation R of the delay bins' differences (None: independent bins).
     """
 
-    model: object
+    model: SpeciesModel | TrajectoryModel
     diff: np.ndarray
     D: np.ndarray
     w: np.ndarray
@@ -632,7 +634,7 @@ def _split(prob, opt, cov, linear_errors):
     """Standard errors of theta, amplitudes, curves and coefficients, and the (theta, beta) block, of one covariance."""
     model, sol, free = prob.model, opt.solution, prob.free
     p = len(free)
-    out = {"amplitudes": {n: np.nan for n in model.map_names}, "curves": None, "coef": None}
+    out: dict[str, Any] = {"amplitudes": {n: np.nan for n in model.map_names}, "curves": None, "coef": None}
     diag = np.diag(cov)
     se = np.where(np.isfinite(diag[:p]), np.sqrt(np.clip(diag[:p], 0, None)), np.inf)
     out["stderr"] = {n: (float(se[free.index(n)]) if n in free else np.nan) for n in prob.names}

@@ -413,7 +413,8 @@ def solvent_basis(q, reference, *, differentials=None, terms=("dT",), heating=Tr
             names.append(term)
             curves.append(np.asarray(differentials[term], float))
     elif heating and late_window and late is not None:
-        heat = estimate_heating_curve(*late, late_window)
+        late_diff, late_err, late_delay = late
+        heat = estimate_heating_curve(late_diff, late_err, late_delay, late_window)
         warnings += list(heat.warnings)
         names.append("dT")
         curves.append(heat.curve)

@@ -259,7 +259,7 @@ def _fit_rows(fcfg, delay, usable):
 
 def _solute(fcfg, data, use, basis, fit, warnings):
     """Arrays of the fit (if any) and the solute difference: data minus the per-delay terms."""
-    arrays = {}
+    arrays: dict[str, np.ndarray] = {}
     diff, err, names, curves = data.diff[use], data.err[use], basis.names, basis.curves
     solvent_like = any(n not in NUISANCE_TERMS for n in names)
     if fit is not None:
