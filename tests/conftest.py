@@ -31,6 +31,12 @@ def pytest_unconfigure(config):
     shutil.rmtree(_CACHE, ignore_errors=True)
 
 
+def pytest_collection_modifyitems(config, items):
+    """Slow tests first (stable order otherwise), so that with ``-n`` the long ones start early and the
+    workers finish together; with ``--dist loadgroup`` xdist then sends the groups first, larger first."""
+    items.sort(key=lambda item: item.get_closest_marker("slow") is None)
+
+
 from movieproc.config import ROOT  # noqa: E402
 
 SCENARIO = ROOT / "demo_data" / "scenario.yaml"

@@ -44,6 +44,10 @@ def _config(tmp, *extra):
         f"solvent.differentials={ROOT}/demo_data/solvent_differentials.csv", *extra])
 
 
+#: Every test of this module on one xdist worker (--dist loadgroup): the module's `reduced` run is made once.
+pytestmark = pytest.mark.xdist_group("analysis-reduced")
+
+
 @pytest.fixture(scope="module")
 def reduced(tmp_path_factory):
     """A 20,000-shot synthetic run reduced to binned differences and model curves."""
@@ -83,6 +87,7 @@ def _true_distance(d, group):
     return out
 
 
+@pytest.mark.slow
 def test_fit_recovers_the_scenario(reduced):
     a = _analyze(reduced, "analysis.zarr")
     p = a.attrs["fit_parameters"]
@@ -103,6 +108,7 @@ def test_fit_recovers_the_scenario(reduced):
     assert 0.9 < a.attrs["fit_reduced_chi2"] < 1.1
 
 
+@pytest.mark.slow
 def test_structure_per_delay_matches_truth(reduced):
     a = _analyze(reduced, "analysis.zarr")
     est = store.read(a, "geometry_Ir-Ir")
@@ -128,6 +134,7 @@ def test_structure_per_delay_matches_truth(reduced):
     np.testing.assert_allclose(d01[reported], est[reported], atol=1e-9)
 
 
+@pytest.mark.slow
 def test_solvent_terms_matter(reduced):
     """Without the heating term the fit is worse and the structure biased at late delays."""
     on = _analyze(reduced, "with_solvent.zarr")
@@ -154,6 +161,7 @@ def test_solvent_terms_matter(reduced):
     assert err_off.mean() > 2 * err_on.mean(), (err_on, err_off)
 
 
+@pytest.mark.slow
 def test_species_mode_with_free_curves(reduced):
     # After the coherent motion (> 1.5 ps) one excited species decays to the ground state:
     # a one-lifetime species model with a free curve finds the scenario's 30 ps.
@@ -165,6 +173,7 @@ def test_species_mode_with_free_curves(reduced):
     assert a.attrs["fit_converged"]
 
 
+@pytest.mark.slow
 def test_bad_analysis_input(reduced, tmp_path):
     with pytest.raises(ConfigError, match="fit.species_curves"):
         _analyze(reduced, "x.zarr", "fit.mode=species", "fit.species_curves=model")
@@ -184,6 +193,7 @@ def test_bad_analysis_input(reduced, tmp_path):
     assert not (reduced / "z.zarr").exists()
 
 
+@pytest.mark.slow
 def test_bootstrap_over_shots(reduced):
     """Poisson bootstrap over shots: replicates refitted; their spread is the same order as the Jacobian errors."""
     cfg = _config(reduced, "differences.bootstrap=12", "differences.seed=3")
@@ -209,6 +219,7 @@ def test_bootstrap_over_shots(reduced):
         assert 0.5 < p[name]["bootstrap_error"] / p[name]["error"] < 3.0, (name, p[name])
 
 
+@pytest.mark.slow
 def test_network_kinetics_and_its_validation(reduced):
     # A general network equivalent to the scenario (one excited species S0 decaying to the
     # ground state S1) finds the same 30 ps lifetime as the sequential scheme.
@@ -226,6 +237,7 @@ def test_network_kinetics_and_its_validation(reduced):
     assert not (reduced / "bad.zarr").exists()
 
 
+@pytest.mark.slow
 def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
     """The absolute scale holds whatever the curves were normalized by (window, total, none)."""
     for mode in ("total", "none"):  # "none": curves left in detector units
@@ -238,6 +250,7 @@ def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
         assert abs(p["value"] - 0.15) < 3 * p["error"], (mode, p)
 
 
+@pytest.mark.slow
 def test_relative_scale_says_its_solvent_units_are_arbitrary(reduced):
     a = _analyze(reduced, "relative.zarr", "scaling.mode=relative")
     assert a["solvent_coef"].attrs["units"] == "arbitrary"
@@ -246,6 +259,7 @@ def test_relative_scale_says_its_solvent_units_are_arbitrary(reduced):
     assert b["solvent_coef"].attrs["units"].startswith("K")
 
 
+@pytest.mark.slow
 def test_fit_errors_name_the_config_keys(reduced):
     # equal starting lifetimes make the sequential scheme's rates repeated: the fit refuses,
     # naming the key the user sets
@@ -309,6 +323,7 @@ SPECIES_FREE = ("fit.mode=species", "fit.species_curves=free")
     ((*SPECIES_FREE, "fit.signal_species=[7]"), "fit.signal_species"),
     ((*SPECIES_FREE, "fit.kinetics=network", "fit.network=[[1, 1]]", "fit.lifetimes_ps=[20.0]"), "fit.network"),
 ])
+@pytest.mark.slow
 def test_fit_errors_through_the_stage_name_real_keys(reduced, overrides, key):
     with pytest.raises(ConfigError) as err:
         _analyze(reduced, "keys.zarr", *overrides)
@@ -317,6 +332,7 @@ def test_fit_errors_through_the_stage_name_real_keys(reduced, overrides, key):
     assert not (reduced / "keys.zarr").exists()
 
 
+@pytest.mark.slow
 def test_energy_nuisance_term(reduced):
     # the demo curves carry no photon-energy mismatch: the extra term changes the fit by
     # less than its errors (scenario truth, demo_data/scenario.yaml: alpha 0.15)
@@ -326,6 +342,7 @@ def test_energy_nuisance_term(reduced):
     assert abs(p["value"] - 0.15) < 3 * p["error"]
 
 
+@pytest.mark.slow
 def test_sign_check_on_the_run(reduced):
     """The data say which timing-correction sign is right (the scenario's is -1)."""
     from movieproc.stages.delays import check_sign

@@ -28,6 +28,8 @@ from movieproc.workflow import load_profile, run_workflow
 from conftest import run_datasets, write_h5
 
 pytestmark = pytest.mark.slow
+#: The tests of the threaded reference (`work`) run on one xdist worker (--dist loadgroup): it is made once.
+ON_THE_REFERENCE_WORKER = pytest.mark.xdist_group("cluster-reference")
 
 SHOTS = 2400  # small demo run: a few seconds per stage
 SUBMIT = Path(__file__).with_name("cluster_submit.sh")
@@ -54,7 +56,9 @@ def work(tmp_path_factory):
 
 
 def demo_overrides(out, *extra):
-    return [f"output_dir={out}", f"run.generate.shots={SHOTS}", "compute.progress=false", *extra]
+    # no movie.gif: the comparisons read the movie store, and the animation is the slowest figure
+    return [f"output_dir={out}", f"run.generate.shots={SHOTS}", "compute.progress=false", "render.animation=false",
+            *extra]
 
 
 def movie_arrays(store) -> dict:
@@ -109,6 +113,7 @@ def free_port() -> int:
 
 # ------------------------------------------------------------------ dask.distributed
 
+@ON_THE_REFERENCE_WORKER
 def test_workers_in_another_folder_give_the_threaded_movie(work, outside_cluster):
     from distributed import Client
 
@@ -121,6 +126,7 @@ def test_workers_in_another_folder_give_the_threaded_movie(work, outside_cluster
     assert not (folder / "results").exists()  # nothing written relative to the workers' folder
 
 
+@ON_THE_REFERENCE_WORKER
 def test_local_cluster_gives_the_threaded_movie_and_is_closed(work):
     config = C.load(overrides=demo_overrides("results/local-cluster", "compute.scheduler=local-cluster",
                                              "compute.workers=2", "compute.memory_per_worker=1GB"))
@@ -219,6 +225,7 @@ def test_a_chunk_lost_beyond_the_retries_fails_clearly_and_a_rerun_completes(tmp
 
 # ------------------------------------------------------------------ Snakemake executors
 
+@ON_THE_REFERENCE_WORKER
 def test_generic_cluster_executor_runs_jobs_as_separate_processes(work, tmp_path, monkeypatch):
     pytest.importorskip("snakemake_executor_plugin_cluster_generic",
                         reason="install the test extra: pip install -e '.[test]'")
@@ -227,7 +234,7 @@ def test_generic_cluster_executor_runs_jobs_as_separate_processes(work, tmp_path
     profile = tmp_path / "profile"
     profile.mkdir()
     (profile / "config.yaml").write_text(f"executor: cluster-generic\ncluster-generic-submit-cmd: {SUBMIT}\n"
-                                         "jobs: 2\nlatency-wait: 10\n")
+                                         "jobs: 2\nlatency-wait: 10\nseconds-between-status-checks: 1\n")
     config = C.load(overrides=demo_overrides("results/generic"))
     updated = run_workflow(config, workdir=work, profile=profile)
     assert_same_movie(work / "results/threads/movie.zarr", work / "results/generic/movie.zarr")
@@ -240,6 +247,7 @@ def test_generic_cluster_executor_runs_jobs_as_separate_processes(work, tmp_path
     assert effective["output_dir"] == "results/generic" and effective["run"]["generate"]["shots"] == SHOTS
 
 
+@ON_THE_REFERENCE_WORKER
 def test_slurm_profile_dry_run(work, caplog):
     from snakemake_interface_executor_plugins.registry import ExecutorPluginRegistry
 

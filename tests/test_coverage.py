@@ -24,6 +24,7 @@ the observed fraction for honest errors lies above 0.85 with probability ~0.96
 """
 
 import numpy as np
+import pytest
 from scipy import stats
 
 from movieproc.fitting import models, varpro
@@ -79,6 +80,7 @@ def fit_run(seed):
     return varpro.fit(model, diff, err, delay, START, correlation=R)
 
 
+@pytest.mark.slow
 def test_two_sigma_intervals_cover_the_truth():
     z_cor, z_ind = [], []
     for seed in range(RUNS):

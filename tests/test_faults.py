@@ -310,7 +310,7 @@ def test_end_to_end_with_nasty_paths_content_tracking_leftovers_and_stale_marker
     f = write_h5(src / "rün: 1\\x.h5", run_datasets(n=600))
     out = tmp_path / "res" / "run #2 {x}: ü\\b"
     base = ["process", str(f), "--out", str(out), "--name", "yes", "--set", "compute.progress=false",
-            "selection.outliers.window=60", "binning.count=5"]
+            "selection.outliers.window=60", "binning.count=5", "render.animation=false"]  # figures/.done, no gif
     assert cli.main(base) == 0, capsys.readouterr().err[-2000:]
     for name in STORES:
         assert (out / name / "zarr.json").is_file(), name

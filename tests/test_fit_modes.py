@@ -66,6 +66,10 @@ def _write_correlation(d, binned):
     store.write_array(g, "delay_correlation", R, ["delay", "delay_other"], units="1")
 
 
+#: Every test of this module on one xdist worker (--dist loadgroup): the module's `small` run is made once.
+pytestmark = [pytest.mark.slow, pytest.mark.xdist_group("fit-modes-small")]  # a reduced run: slow
+
+
 @pytest.fixture(scope="module")
 def small(tmp_path_factory):
     """A small run reduced once: binned stores (with and without a bootstrap) and two model stores."""
@@ -138,13 +142,12 @@ def test_fit_mode_runs_or_refuses_clearly(small, case, tmp_path):
     assert ("frame" in a) == traj
 
 
-@pytest.mark.slow
 def test_species_fit_with_fixed_structures_through_the_cli(small, tmp_path, monkeypatch, capfd):
     """Ground and excited XYZ (no trajectory), species curves from the model: ``movieproc process`` ends."""
     out = tmp_path / "out"
     sets = ["compute.progress=false", "binning.count=15", f"model.ground={ROOT / 'demo_data' / 'ground.xyz'}",
             f"model.species={{A1: '{small / 'excited.xyz'}'}}", "fit.mode=species", "fit.species_curves=model",
-            "fit.lifetimes_ps=[20.0]"]
+            "fit.lifetimes_ps=[20.0]", "render.animation=false"]  # the analysis store is checked, not movie.gif
     monkeypatch.chdir(tmp_path)
     args = ["process", str(small / "run_000.h5"), "--out", str(out)]
     for item in sets:

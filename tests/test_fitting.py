@@ -90,6 +90,7 @@ def test_solve_linear_matches_dense_lstsq():
 
 # --------------------------------------------------------------------- species model
 
+@pytest.mark.slow
 def test_species_fit_recovers_parameters_with_honest_errors():
     # Six seeded noise realizations; every fitted parameter within 4 reported standard
     # errors and at least 90 % of the 2-sigma intervals containing the truth (expected
@@ -133,6 +134,7 @@ def test_species_fit_with_given_curves_recovers_alpha():
     assert np.all(np.abs(z) < 4.5)  # 49 delays: P(any |z| > 4.5) ~ 3e-4
 
 
+@pytest.mark.slow
 def test_species_fit_with_damped_oscillation():
     # A -> ground with a damped 0.4-ps vibration (free cos/sin curves). Data from the
     # closed-form IRF convolutions (validated against quad in test_kinetics.py).
@@ -175,6 +177,7 @@ def test_switching_off_solvent_raises_chi2_and_biases():
     assert without.chi2_delay[late].mean() > 3 * with_s.chi2_delay[late].mean()
 
 
+@pytest.mark.slow
 def test_nonconvergence_and_bounds_are_flagged():
     D, err, _ = sequential_data(np.random.default_rng(30), TRUTH_SEQ)
     model = models.SpeciesModel(2, species=[0, 1], solvent=DSDT[None])
@@ -266,6 +269,7 @@ def test_trajectory_fit_recovers_t0_sigma_lifetime_alpha():
     assert zb > 5
 
 
+@pytest.mark.slow
 def test_trajectory_fit_errors_match_monte_carlo_scatter():
     # Reference: the scatter of the estimates over 20 seeded noise realizations. The
     # reported (Jacobian) errors, including alpha's from the full covariance, must match
@@ -289,6 +293,7 @@ def test_trajectory_fit_errors_match_monte_carlo_scatter():
     assert np.isnan(proj.amplitudes_err["alpha"])
 
 
+@pytest.mark.slow
 def test_bootstrap_over_delays():
     tau, r, Y = toy_trajectory()
     model = models.TrajectoryModel(tau, Y, solvent=DSDT[None])

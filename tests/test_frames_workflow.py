@@ -6,6 +6,7 @@ recovered differences are compared with the scenario's ground truth.
 """
 
 import numpy as np
+import pytest
 import xarray as xr
 
 from movieproc import config as mpconfig
@@ -16,6 +17,7 @@ from movieproc.workflow import run_workflow
 ROOT = mpconfig.ROOT
 
 
+@pytest.mark.slow
 def test_frames_demo_end_to_end(tmp_path):
     res = tmp_path / "resources"
     cfg = mpconfig.load(ROOT / "config" / "demo_frames.yaml", [
@@ -23,7 +25,8 @@ def test_frames_demo_end_to_end(tmp_path):
         f"run.generate.scenario={ROOT}/demo_data/scenario.yaml", f"output_dir={tmp_path}/out",
         f"detector.mask_file={res}/mask.npy", f"detector.dark_file={res}/dark.npy",
         f"model.ground={ROOT}/demo_data/ground.xyz", f"model.trajectory=['{ROOT}/demo_data/excited_trajectory.xyz']",
-        f"solvent.differentials={ROOT}/demo_data/solvent_differentials.csv", "compute.progress=false"])
+        f"solvent.differentials={ROOT}/demo_data/solvent_differentials.csv", "compute.progress=false",
+        "render.animation=false"])  # difference_map.png is checked, not movie.gif
     updated = run_workflow(cfg, cores=2, workdir=tmp_path)
     out = tmp_path / "out"
     assert any("movie.zarr" in u for u in updated)

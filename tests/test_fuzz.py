@@ -142,6 +142,7 @@ def one_run(tmp_path_factory):
     return write_h5(tmp_path_factory.mktemp("fuzzrun") / "run.h5", run_datasets(n=30))
 
 
+@pytest.mark.slow
 @settings(max_examples=100, **FAST)
 @given(out=PATH_TEXT, name=st.text(max_size=16).filter(lambda t: "\x00" not in t))
 def test_cli_paths_and_names_round_trip(out, name, one_run, tmp_path):
@@ -171,6 +172,7 @@ SECTIONS = st.sampled_from(["run", "output_dir", "compute", "selection", "timing
                             "render", "provenance", "detector", "fit", "model", "bogus"])
 
 
+@pytest.mark.slow
 @settings(max_examples=100, **FAST)
 @given(doc=st.one_of(
     st.text(max_size=200),

@@ -62,6 +62,7 @@ def test_kernel_matches_the_sparse_matrix_reference():
     assert b.moments[0, 0].sum() == pytest.approx(share.sum(), rel=1e-12)
 
 
+@pytest.mark.slow
 def test_integer_and_float_frames_give_the_same_result():
     det, geo, factor = _setup(shape=(96, 96))
     b = integration.build_binning(geometry.q_map(geo, 12.0), np.linspace(0.5, 3.5, 60), factor=factor)

@@ -16,7 +16,8 @@ from movieproc import config as C
 from movieproc.stages import bins as bins_stage
 from movieproc.stages import difference as difference_stage
 
-pytestmark = pytest.mark.slow
+# on the xdist worker of the other tests of the session's demo run (--dist loadgroup): it is made once
+pytestmark = [pytest.mark.slow, pytest.mark.xdist_group("demo-run")]
 
 
 def _read(path, *names):

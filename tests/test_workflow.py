@@ -18,12 +18,15 @@ from movieproc import config as C
 from movieproc.io import runfile
 from movieproc.workflow import run_workflow
 
+#: The tests of the session's demo run (conftest `demo_run`) run on one xdist worker (--dist loadgroup): it is made once.
+ON_THE_DEMO_WORKER = pytest.mark.xdist_group("demo-run")
 STAGE_OUTPUTS = ["shots.zarr", "selection.zarr", "delays.zarr", "bins.zarr", "binned.zarr", "movie.zarr"]
 
 
 # ------------------------------------------------------------------ the demo command
 
 @pytest.mark.slow
+@ON_THE_DEMO_WORKER
 def test_demo_command_writes_movie_and_figures(demo_run):
     p = demo_run.proc
     assert p.returncode == 0, p.stderr[-3000:]
@@ -39,6 +42,7 @@ def test_demo_command_writes_movie_and_figures(demo_run):
 
 
 @pytest.mark.slow
+@ON_THE_DEMO_WORKER
 def test_movie_opens_with_xarray_named_dims_and_units(demo_run):
     assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
     ds = xr.open_zarr(demo_run.movie, consolidated=False)
@@ -61,6 +65,7 @@ def test_movie_opens_with_xarray_named_dims_and_units(demo_run):
 
 
 @pytest.mark.slow
+@ON_THE_DEMO_WORKER
 def test_summary_of_the_movie(demo_run, capsys):
     assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
     assert cli.main(["summary", str(demo_run.movie)]) == 0
@@ -79,7 +84,9 @@ def test_rebinning_recalibration_and_bootstrap_rerun_only_what_follows(tmp_path)
             f"run.files=['{tmp_path / 'in' / 'run_000.h5'}', '{tmp_path / 'in' / 'run_001.h5'}']",
             f"run.generate.truth={tmp_path / 'in' / 'truth.zarr'}",
             f"run.generate.scenario={tmp_path / 'demo_data' / SCENARIO.name}", "run.generate.shots=2400",
-            "compute.progress=false"]
+            "compute.progress=false",
+            # what re-runs is checked, not the fit or the figures: no structural fit, no movie.gif
+            "fit.mode=none", "render.animation=false"]
     out = tmp_path / "out"
     # the demo inputs (scenario, structures) the config names relative to the working directory
     shutil.copytree(SCENARIO.parent, tmp_path / "demo_data")
