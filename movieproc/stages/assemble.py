@@ -11,12 +11,11 @@ import logging
 from pathlib import Path
 
 from ..io import store
+from ..safety import SAFETY
 from .common import now, versions
 
 log = logging.getLogger("movieproc.assemble")
 
-SAFETY = ("movieproc analyses recorded data. It does not set beam, laser or safety parameters; "
-          "local rules and the facility's safety staff decide those.")
 
 CONVENTIONS = {
     "delay": "ps; positive = probe after pump; corrected delay = stage_delay - time_zero + sign * timing correction",
