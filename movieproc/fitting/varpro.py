@@ -61,7 +61,7 @@ import numpy as np
 from scipy import optimize, sparse
 
 from movieproc.errors import DataError, InputError, MovieprocError, ParameterError
-from movieproc.fitting.correlated import correlated_dof, reduced_chi2, sandwich_covariance
+from movieproc.fitting.correlated import correlated_dof, inverse_psd, reduced_chi2, sandwich_covariance
 from movieproc.fitting.models import SpeciesModel, TrajectoryModel
 from movieproc.signals.covariance import check_correlation
 
@@ -87,8 +87,6 @@ CHI2_SIGMAS = 5.0
 DELAYS_PER_PARAMETER = 3
 #: Relative central-difference step of the Jacobian in theta (plus an absolute 1e-2 of it, for values near 0).
 JACOBIAN_STEP = 1e-5
-#: Smallest relative eigenvalue of a Jacobi-scaled J^T J still inverted (else: undetermined, infinite error).
-SINGULAR_RTOL = 1e-13
 #: A parameter takes part in an undetermined direction when its share of a null vector exceeds this.
 NULL_SHARE = 1e-8
 
@@ -604,7 +602,7 @@ def _projected_errors(prob, opt):
     so its expectation under the correlation is not computed).
     """
     Jp, red = opt.jacobian, opt.red_chi2
-    cov_ind = _inv_psd(Jp.T @ Jp) * red
+    cov_ind = inverse_psd(Jp.T @ Jp) * red
     if prob.correlation is None or not prob.free or not np.all(np.isfinite(cov_ind)):
         return cov_ind, cov_ind, red
     return cov_ind, sandwich_covariance(Jp, prob.correlation, prob.valid, red_chi2=red), red
@@ -773,24 +771,6 @@ def fit(model, diff, diff_err, delay, p0, *, bounds=None, fixed=(), max_nfev=Non
                      stderr_independent=errors.stderr_independent,
                      amplitudes_err_independent=errors.amplitudes_err_independent, error_model=errors.error_model,
                      error_scale=errors.error_scale)
-
-
-def _inv_psd(N):
-    """Inverse of a symmetric PSD matrix; inf on the diagonal where singular."""
-    if N.size == 0:
-        return N
-    d = np.sqrt(np.diag(N))
-    if np.any(d == 0):
-        out = np.full(N.shape, np.nan)
-        np.fill_diagonal(out, np.inf)
-        return out
-    Ns = N / np.outer(d, d)
-    lam, V = np.linalg.eigh(Ns)
-    if lam.min() <= SINGULAR_RTOL * lam.max():
-        out = np.full(N.shape, np.nan)
-        np.fill_diagonal(out, np.inf)
-        return out
-    return (V / lam) @ V.T / np.outer(d, d)
 
 
 def _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol):
