@@ -799,6 +799,12 @@ def _theta_jacobian(model, phat, free, lo, hi, t, D, w, valid, sol):
     return np.array(cols).T if free else np.zeros((vidx.size, 0))
 
 
+def _design_counts(des) -> tuple[int, int, int]:
+    """Free curves K, per-delay curves J and global maps n_g of a linear design."""
+    C, X, G = des.profiles, des.maps, des.curves
+    return (0 if C is None else C.shape[1], 0 if G is None else G.shape[0], 0 if X is None else X.shape[0])
+
+
 def _normal_matrix(Jt, des, w, valid):
     """Normal matrix N = [Jt, JL]^T [Jt, JL] of (theta, B, s, beta), assembled block by block.
 
@@ -807,9 +813,7 @@ def _normal_matrix(Jt, des, w, valid):
     """
     nt, nq = w.shape
     C, X, G = des.profiles, des.maps, des.curves
-    K = 0 if C is None else C.shape[1]
-    J = 0 if G is None else G.shape[0]
-    ng = 0 if X is None else X.shape[0]
+    K, J, ng = _design_counts(des)
     p = Jt.shape[1]
     nL = K * nq + nt * J + ng
     W2 = w * w
@@ -894,9 +898,7 @@ def _full_jacobian(Jt, des, w, valid):
     """
     nt, nq = w.shape
     C, X, G = des.profiles, des.maps, des.curves
-    K = 0 if C is None else C.shape[1]
-    J = 0 if G is None else G.shape[0]
-    ng = 0 if X is None else X.shape[0]
+    K, J, ng = _design_counts(des)
     p = Jt.shape[1]
     tt, qq = np.meshgrid(np.arange(nt), np.arange(nq), indexing="ij")
     row = (tt * nq + qq).ravel()
