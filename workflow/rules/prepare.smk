@@ -14,7 +14,7 @@ if config["run"].get("generate"):
             from movieproc import synth
 
             g = params.generate
-            run_stage(synth.synthesize_run, input.scenario, g["shots"], g["seed"], output.files, folder(output.truth), g["mode"])
+            run_step(synth.synthesize_run, input.scenario, g["shots"], g["seed"], output.files, folder(output.truth), g["mode"])
 
 
 rule ingest:
