@@ -131,6 +131,11 @@ def test_rebinning_recalibration_and_bootstrap_rerun_only_what_follows(tmp_path)
     assert made == {"binned.zarr", "movie.zarr"}
     assert "selection.zarr" not in names and "bins.zarr" not in names
     assert zarr.open_group(str(out / "binned.zarr"), mode="r")["diff_boot"].shape[0] == 3
+
+    # a render option re-draws the figures only: the movie is not re-assembled
+    redraw = boot + ["render.dpi=90"]
+    made, names = remade(run_workflow(C.load(overrides=redraw), cores=2, workdir=tmp_path))
+    assert made == set() and ".done" in names
     assert leftovers(tmp_path) == []
 
 

@@ -1,8 +1,10 @@
 # The movie and its figures.
 
 # Every section that shapes the movie (it records them in its attrs); `render` only
-# changes the figures and `compute` how stages run, so neither re-runs `assemble`.
-MOVIE_SECTIONS = [k for k in config if k not in ("render", "compute", "output_dir")]
+# changes the figures and `compute` how stages run, so neither re-runs `assemble`. The
+# provenance (the overrides given) changes with every override, a render option too: the
+# movie records the provenance of the run that made it, without it being a reason to remake it.
+MOVIE_SECTIONS = [k for k in config if k not in ("render", "compute", "output_dir", "provenance")]
 
 
 rule assemble:
@@ -16,7 +18,7 @@ rule assemble:
     params:
         config=section(*MOVIE_SECTIONS),
     run:
-        stage("assemble", input, output, params.config)
+        stage("assemble", input, output, dict(params.config, provenance=config.get("provenance")))
 
 
 rule render:
