@@ -7,6 +7,7 @@
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
     movieproc calibrate detector geometry from a calibrant powder image
+    movieproc init      write a starter config to fill in
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
@@ -24,6 +25,7 @@ from pathlib import Path
 
 from . import __version__
 from . import config as mpconfig
+from . import resources
 from .safety import SAFETY
 from .errors import MovieprocError
 from .stages.common import setup_logging
@@ -33,7 +35,7 @@ from .stages.common import setup_logging
 SIGN_CHECK_MIN_GAIN = 0.8
 
 
-PROCESS_CONFIG = mpconfig.ROOT / "config" / "process.yaml"
+PROCESS_CONFIG = resources.process_config()
 
 
 class _Extend(argparse.Action):
@@ -267,7 +269,7 @@ def build_parser():
 
     p = sub.add_parser("synth", help="write a synthetic run of the demo scenario with its ground truth")
     p.add_argument("out", help="output folder")
-    p.add_argument("--scenario", default=str(mpconfig.ROOT / "demo_data" / "scenario.yaml"))
+    p.add_argument("--scenario", default=str(resources.demo_file("scenario.yaml")))
     p.add_argument("--shots", type=int, default=24000)
     p.add_argument("--seed", type=int, default=2026)
     p.add_argument("--files", type=int, default=2)
@@ -285,9 +287,10 @@ def build_parser():
     _add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command
+    from . import calibrate_command, init_command
 
     calibrate_command.add_parser(sub)
+    init_command.add_parser(sub)
     return parser
 
 
