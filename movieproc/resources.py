@@ -50,7 +50,7 @@ def data_root() -> Path:
     for root in candidates:
         if (root / MARKER).is_file():
             return root.resolve()
-    raise InputError(packaged, "no workflow/Snakefile in the installed package or beside it",
+    raise InputError(str(packaged), "no workflow/Snakefile in the installed package or beside it",
                      "movieproc installed with its package data (python3 -m pip install . from a checkout, "
                      "or the wheel); an installation from a zip archive is not supported")
 
