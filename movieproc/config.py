@@ -24,6 +24,9 @@ from .errors import ConfigError
 #: The folder holding ``workflow/``, ``config/`` and ``demo_data/`` (the source checkout, or the installed
 #: package's data; :func:`movieproc.resources.data_root`). Code asks :mod:`movieproc.resources` for files.
 ROOT = resources.data_root()
+#: The schema files' folder and the demo config (as :mod:`movieproc.resources` gives them).
+SCHEMA_DIR = resources.schema("config").parent
+DEFAULT_CONFIG = resources.default_config()
 #: Start of a value a user must replace (``movieproc init`` writes run.files so); such a config is refused.
 PLACEHOLDER = "FILL-IN"
 
