@@ -138,7 +138,7 @@ def validate(config: dict) -> dict:
     Returns a new dict; raises :class:`ConfigError` naming the first bad key.
     """
     config = copy.deepcopy(config or {})
-    _check_placeholders(config)
+    _check_placeholders({key: value for key, value in config.items() if key != "provenance"})
     validator = _Validator(load_schema())
     errors = sorted(validator.iter_errors(config),
                     key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
