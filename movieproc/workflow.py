@@ -310,7 +310,7 @@ def _prepare(config: dict, forcerun, dryrun: bool, workdir) -> tuple[Path, set]:
 
 
 def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=(), dryrun=False, workdir=None,
-                 quiet=False, profile=None, jobs: int | None = None) -> list:
+                 quiet: bool | None = None, profile=None, jobs: int | None = None) -> list:
     """Run the workflow on a validated config.
 
     Parameters
@@ -335,6 +335,10 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
         jobs, resources and the executor plugin's settings (see :func:`load_profile`).
     jobs : int, optional
         Jobs at once (cluster jobs with a cluster executor); overrides the profile's ``jobs``.
+    quiet : bool, optional
+        Snakemake's own output limited to its warnings and errors (a failing job's error stays
+        visible; a dry run still lists the jobs). None: quiet when ``movieproc --quiet`` is
+        in force (:func:`movieproc.progress.quiet`).
 
     Returns
     -------
@@ -362,7 +366,8 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
         if not config_file.exists():
             write_effective_config(view, workdir, config_file)
         try:
-            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config)
+            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config,
+                           _quiet() if quiet is None else bool(quiet))
             updated = _snakemake(config_file, request, workdir, out)
         except BaseException as exc:  # a stage's failure, or Ctrl-C
             if not dryrun:
@@ -418,11 +423,31 @@ class _Run:
     jobs: int | None
     profile: argparse.Namespace | None
     config: dict
+    quiet: bool = False
+
+
+def _quiet() -> bool:
+    from .progress import quiet
+
+    return quiet()
+
+
+def _output_settings(run: _Run):
+    """Snakemake's output settings; quiet: its warnings and errors only (not for a dry run, whose
+    listing of jobs is the point)."""
+    from snakemake.settings.enums import Quietness
+    from snakemake.settings.types import OutputSettings
+
+    quiet = run.quiet and not run.dryrun
+    return OutputSettings(dryrun=run.dryrun, printshellcmds=bool(getattr(run.profile, "printshellcmds", False)),
+                          # RULES would also hide a failing job's error: job and progress lines go by level
+                          quiet={Quietness.PROGRESS, Quietness.HOST, Quietness.REASON} if quiet else None,
+                          log_level_override=logging.WARNING if quiet else None)
 
 
 def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
     from snakemake.api import SnakemakeApi
-    from snakemake.settings.types import ConfigSettings, DAGSettings, OutputSettings
+    from snakemake.settings.types import ConfigSettings, DAGSettings
 
     updated: list = []
     error_file = out / "last_error.txt"
@@ -430,8 +455,7 @@ def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
         error_file.unlink(missing_ok=True)
     executor, settings = _executor_settings(run)
     try:
-        with SnakemakeApi(OutputSettings(dryrun=run.dryrun, quiet=None,
-                                         printshellcmds=bool(getattr(run.profile, "printshellcmds", False)))) as api:
+        with SnakemakeApi(_output_settings(run)) as api:
             wf = api.workflow(
                 resource_settings=settings.pop("resources"),
                 config_settings=ConfigSettings(configfiles=[config_file], replace_workflow_config=True),

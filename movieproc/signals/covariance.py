@@ -31,6 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, sparse
 
+from ..progress import iterate
+
 __all__ = ["reference_use_counts", "reference_gram", "bin_coefficient_overlap", "overlap_from_gram",
            "bin_correlation", "check_correlation",
            "cholesky_correlation", "whiten", "decorrelate",
@@ -422,7 +424,7 @@ def bootstrap_weights(rng, n_boot, n_shots):
     if int(n_boot) < 0:
         raise ValueError(f"n_boot must be a number of replicates >= 0, got {n_boot}")
     out = np.empty((int(n_boot), int(n_shots)), np.uint8)
-    for a in range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW):
+    for a in iterate(range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW), "bootstrap weights", unit="blocks"):
         rows = out[a:a + WEIGHT_ROWS_PER_DRAW]
         # Poisson(1) above 255 has probability ~1e-507: the clip never acts.
         rows[:] = np.minimum(rng.poisson(1.0, rows.shape), 255)
