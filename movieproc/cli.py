@@ -43,6 +43,10 @@ class _Extend(argparse.Action):
     """``--set A=1 B=2 --set C=3`` collects [A=1, B=2, C=3]."""
 
     def __call__(self, parser, namespace, values, option_string=None):
+        for value in values:
+            if "=" not in value:  # e.g. a run file after the pairs, taken by --set
+                parser.error(f"{option_string}: {value!r} is not KEY=VALUE; put run files before {option_string}, "
+                             f"or end its pairs with -- (movieproc process {option_string} a.b=1 -- RUN.h5)")
         setattr(namespace, self.dest, list(getattr(namespace, self.dest) or []) + list(values))
 
 

@@ -227,7 +227,8 @@ def track_futures(futures, desc: str, unit: str = "tasks", target: tqdm | None =
 
     b = target if target is not None else bar(len(futures), desc, unit)
     try:
-        for _ in as_completed(futures):
+        # the futures' own client's loop: their client need not be the default one
+        for _ in as_completed(futures, loop=futures[0].client.loop if futures else None):
             b.update(1)
     finally:
         if target is None:
