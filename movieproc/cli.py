@@ -39,12 +39,17 @@ PROCESS_CONFIG = mpconfig.ROOT / "config" / "process.yaml"
 DEFAULT_CONFIG_TEXT = f"{mpconfig.DEFAULT_CONFIG}, the demo"
 
 
+#: Suffixes of files (run files, configs) that a --set list may swallow when they follow its pairs.
+FILE_SUFFIXES = (".h5", ".hdf5", ".nxs", ".yaml", ".yml")
+
+
 class _Extend(argparse.Action):
     """``--set A=1 B=2 --set C=3`` collects [A=1, B=2, C=3]."""
 
     def __call__(self, parser, namespace, values, option_string=None):
         for value in values:
-            if "=" not in value:  # e.g. a run file after the pairs, taken by --set
+            if "=" not in value and (Path(value).suffix.lower() in FILE_SUFFIXES or Path(value).exists()):
+                # a run file after the pairs, taken by --set (other values without '=' are config errors)
                 parser.error(f"{option_string}: {value!r} is not KEY=VALUE; put run files before {option_string}, "
                              f"or end its pairs with -- (movieproc process {option_string} a.b=1 -- RUN.h5)")
         setattr(namespace, self.dest, list(getattr(namespace, self.dest) or []) + list(values))
