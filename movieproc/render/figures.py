@@ -13,6 +13,7 @@ import numpy as np  # noqa: E402
 from matplotlib.colors import TwoSlopeNorm  # noqa: E402
 from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
 
 from . import style  # noqa: E402
 
@@ -98,7 +99,7 @@ def _shots_strip(ax, bounds, shots, low_count):
     colors = np.where(low, style.FIT, "0.5")
     ax.barh(bounds[:, 0], np.maximum(shots, 0.5), height=bounds[:, 1] - bounds[:, 0], align="edge", color=colors,
             lw=0)
-    ax.set_xscale("log")
+    ax.xaxis.set_major_locator(MaxNLocator(2, integer=True))
     ax.set_xlabel("pump-on\nshots per bin")
     ax.tick_params(labelleft=False)
     ax.set_ylabel("")
@@ -138,10 +139,10 @@ def difference_map(q, delay, diff, bounds=None, q_weighted=True, low_count=None,
     lim = _robust_limit(data)
     fig, ax, mesh = _map(q, delay, data, lim, bounds, n_shots, low_count)
     cb = fig.colorbar(mesh, ax=fig.axes, shrink=0.9, pad=0.01, extend="both")
-    cb.set_label(signal_label(q_weighted, units) + "; colours end at the 99th percentile of |values|")
+    cb.set_label(signal_label(q_weighted, units))
     ax.set_title(title or "pump-probe difference map")
-    fig.supxlabel(style.delay_scale_note(delay) + "; bins drawn at their widths; grey: no data", fontsize=7,
-                  color="0.3")
+    fig.supxlabel(style.delay_scale_note(delay) + ";\nbins drawn at their widths; grey: no data; colours saturate "
+                  "beyond the 99th percentile of |values|", fontsize=7, color="0.3")
     return fig
 
 
@@ -174,13 +175,12 @@ def nice_step(value):
 
 
 def _delay_text(requested, actual):
-    """Label of a curve: the requested delay, with the bin's mean in brackets where it differs visibly."""
+    """Label of a curve: the requested delay, and the bin's mean delay (small text) where it differs visibly."""
     if requested is None:
-        return f"{actual:.3g} ps"
-    text = f"{requested:g} ps"
+        return f"{actual:.3g} ps", ""
     if f"{actual:.2g}" != f"{requested:.2g}":
-        text += f"  (bin mean {actual:.3g} ps)"
-    return text
+        return f"{requested:g} ps", f"bin mean {actual:.3g} ps"
+    return f"{requested:g} ps", ""
 
 
 def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, model=None, title="", units=""):
@@ -216,8 +216,11 @@ def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, mo
         ax.plot(q, data[i] + off, color=style.DATA, lw=0.9)
         if model is not None:
             ax.plot(q, model[i] * w + off, color=style.FIT, lw=1.0)
-        ax.text(1.01, off, _delay_text(req, delay[i]), transform=ax.get_yaxis_transform(), ha="left", va="center",
-                fontsize=7.5)
+        main, mean = _delay_text(req, delay[i])
+        ax.text(1.01, off, main, transform=ax.get_yaxis_transform(), ha="left", va="bottom", fontsize=7.5)
+        if mean:
+            ax.text(1.01, off, mean, transform=ax.get_yaxis_transform(), ha="left", va="top", fontsize=6,
+                    color="0.35")
     bar = nice_step(0.8 * step)
     x = q[0] - 0.02 * (q[-1] - q[0])
     ax.plot([x, x], [step * 0.35, step * 0.35 + bar], color="k", lw=2, solid_capstyle="butt", clip_on=False)
@@ -523,7 +526,7 @@ def realspace(r, delay, values, delays=None, title="", units="", info=None):
 
 
 #: Most frames an animation draws (delays beyond are thinned evenly): keeps the GIF small and quick.
-ANIMATION_MAX_FRAMES = 40
+ANIMATION_MAX_FRAMES = 60
 #: Colours of the GIF palette (one palette for all frames, from the first).
 GIF_COLORS = 64
 
@@ -634,7 +637,7 @@ def _structure_axes(sax, positions, element):
     for e in kinds:
         sax.scatter([], [], c=colors[e], label=e)
     sax.legend(fontsize=7, loc="upper right")
-    stext = sax.text(0.02, 0.02, "", transform=sax.transAxes, fontsize=7.5, animated=True)
+    stext = sax.text(0.02, 0.98, "", transform=sax.transAxes, fontsize=7.5, va="top", animated=True)
     return [dots, stext]
 
 

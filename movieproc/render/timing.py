@@ -94,7 +94,6 @@ def _shots(ax, bounds, n_shots, low_count, spread):
     low = np.zeros(len(n_shots), bool) if low_count is None else np.asarray(low_count, bool)
     ax.bar(bounds[:, 0], np.asarray(n_shots, float), width=bounds[:, 1] - bounds[:, 0], align="edge",
            color=np.where(low, style.FIT, "0.55"), lw=0)
-    ax.set_yscale("log")
     ax.set_ylabel("pump-on shots per bin")
     ax.set_title(f"{len(n_shots)} bins" + (f", {int(low.sum())} with too few shots (red)" if low.any() else ""))
     style.delay_axis(ax, bounds.ravel())
