@@ -188,9 +188,19 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     for line in summary_lines(movie.attrs.get("warnings", [])):
         log.info("%s", line)
     tmp = out.with_name(out.name + ".tmp")
-    tmp.write_text(json.dumps({"written_by": "movieproc render", "files": figs.written}, indent=1) + "\n")
+    tmp.write_text(json.dumps({"written_by": "movieproc render", "files": figs.written, "render": rcfg}, indent=1)
+                   + "\n")
     tmp.replace(out)
     return [figs.folder / f for f in figs.written]
+
+
+def earlier_settings(marker: Path) -> dict | None:
+    """The render settings an earlier render recorded in its marker, or None."""
+    try:
+        settings = json.loads(Path(marker).read_text()).get("render")
+    except (OSError, ValueError, AttributeError):
+        return None
+    return settings if isinstance(settings, dict) else None
 
 
 def _remove_stale(marker: Path, written) -> list:
