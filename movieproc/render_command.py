@@ -42,8 +42,10 @@ def render_config(movie_attrs: dict, overrides, earlier: dict | None = None) -> 
         if not (key.startswith("render.") or key == "run.name"):
             raise ConfigError(key, "given to movieproc render", "a render.* key or run.name (the movie is only "
                               "re-drawn; other settings need movieproc run)")
-    raw = {k: v for k, v in recorded.items() if k != "provenance"}
-    raw["render"] = dict(earlier or raw.get("render") or {})
+    # validated inside a complete config (the default one), so that only these two settings matter
+    raw = mpconfig.read_file(mpconfig.DEFAULT_CONFIG)
+    raw["render"] = dict(earlier or recorded.get("render") or {})
+    raw["run"]["name"] = (recorded.get("run") or {}).get("name", raw["run"]["name"])
     cfg = mpconfig.validate(mpconfig.apply_overrides(raw, overrides))
     return {"render": cfg["render"], "run": {"name": cfg["run"]["name"]}}
 

@@ -66,11 +66,12 @@ def _q_edges(q):
     return np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
 
 
-def signal_label(q_weighted, units):
-    """Axis label of a (q-weighted) difference with its units."""
+def signal_label(q_weighted, units, wrap=False):
+    """Axis label of a (q-weighted) difference with its units (units on a second line with ``wrap``)."""
+    sep = "\n" if wrap else " "
     if q_weighted:
-        return "q·ΔS (1/Å × " + (units or "data units") + ")"
-    return "ΔS (" + (units or "data units") + ")"
+        return "q·ΔS" + sep + "(1/Å × " + (units or "data units") + ")"
+    return "ΔS" + sep + "(" + (units or "data units") + ")"
 
 
 def _map(q, delay, values, lim, bounds, shots=None, low_count=None, size=(style.PAGE, 5.2)):
@@ -207,7 +208,7 @@ def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, mo
     err = np.asarray(diff_err, float) * w[None, :]
     rows = [i for _, i in pick]
     step = 2.4 * _robust_limit(data[rows], 99.5) if rows else 1.0
-    fig, ax = plt.subplots(figsize=(style.COLUMN * 1.6, 1.2 + 0.75 * max(1, len(pick))), layout="constrained")
+    fig, ax = plt.subplots(figsize=(style.COLUMN * 1.6, 1.2 + 0.75 * max(3, len(pick))), layout="constrained")
     for j, (req, i) in enumerate(pick):
         off = -j * step
         ax.axhline(off, color=style.GUIDE, lw=0.5)
@@ -235,7 +236,7 @@ def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, mo
     ax.set_yticks([])
     ax.set_ylim(-(len(pick) - 0.4) * step, step * (0.45 + bar / step))
     ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel(signal_label(q_weighted, units) + ", curves offset")
+    ax.set_ylabel(signal_label(q_weighted, units, wrap=True) + ", curves offset")
     ax.set_title(title or "difference curves", pad=16)
     return fig
 
@@ -586,7 +587,7 @@ def animation(path, q, delay, data, err, model, positions, element, label=None, 
         ax.axhline(0, color=style.GUIDE, lw=0.5)
         ax.set_ylim(-lim, lim)
         ax.set_xlabel("q (1/Å)")
-        ax.set_ylabel(signal_label(q_weighted, units))
+        ax.set_ylabel(signal_label(q_weighted, units, wrap=True), fontsize=8)
         ax.legend(loc="upper right", fontsize=7)
         text = ax.text(0.02, 0.95, "", transform=ax.transAxes, va="top", animated=True)
         moving = [band, line, text] + ([fit] if fit is not None else [])

@@ -95,7 +95,7 @@ def delay_axis(ax, delay, which="x", label="delay (ps)"):
                                                             subs=[1.0]))
         axis.set_minor_locator(ticker.SymmetricalLogLocator(base=10, linthresh=DELAY_LINTHRESH_PS,
                                                             subs=np.arange(2, 10)))
-        lin = ticker.FixedLocator(np.arange(-0.5, 0.51, 0.5) * DELAY_LINTHRESH_PS)
+        lin = ticker.FixedLocator(np.array([-1.0, -0.5, 0.0, 0.5, 1.0]) * DELAY_LINTHRESH_PS)
         axis.set_major_locator(_Union(axis.get_major_locator(), lin))
     axis.set_major_formatter(ticker.FuncFormatter(_plain))
     (ax.set_xlabel if which == "x" else ax.set_ylabel)(label)
@@ -116,7 +116,9 @@ class _Union(ticker.Locator):
     def __call__(self):
         vmin, vmax = self.axis.get_view_interval()
         ticks = np.union1d(self.first(), self.second())
-        return ticks[(ticks >= min(vmin, vmax)) & (ticks <= max(vmin, vmax))]
+        low, high = min(vmin, vmax), max(vmin, vmax)
+        tol = 1e-9 * max(abs(low), abs(high), 1.0)
+        return ticks[(ticks >= low - tol) & (ticks <= high + tol)]
 
 
 def delay_scale_note(delay) -> str:
