@@ -98,15 +98,20 @@ def _stat_key(path: Path) -> list:
     return [st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino]
 
 
-def input_checksums(files, out: Path | None = None, workdir=None, save: bool = False) -> dict:
-    """Checksums of the run files as the shots store records them (``{str(Path(f)): 'sha256:...'}``).
+def input_checksums(files, out: Path | None = None, workdir=None, save: bool = False,
+                    algorithm: str | None = None) -> dict:
+    """Checksums of the run files as the shots store records them (``{str(Path(f)): 'xxh3_128:...'}``).
 
     Each file is hashed once: the result is cached in ``<out>/.movieproc-checksums.json``
     under the file's absolute path with its size, modification time, change time and inode,
     and hashed again only when one of these differs. The change time cannot be set back by
     ``cp -p`` or ``rsync -t``, so a file replaced with an older modification time is hashed again.
+    ``algorithm`` (default: the shots store's, :data:`movieproc.io.shotstore.CHECKSUM_ALGORITHM`)
+    lets a store written with another hash be compared without re-ingesting it.
     """
-    from .io.shotstore import file_checksum
+    from .io.shotstore import CHECKSUM_ALGORITHM, checksum_algorithm, file_checksum
+
+    algorithm = algorithm or CHECKSUM_ALGORITHM
 
     cache_path = out / CHECKSUM_CACHE if out is not None else None
     try:
@@ -118,10 +123,11 @@ def input_checksums(files, out: Path | None = None, workdir=None, save: bool = F
         path = Path(os.path.abspath(_base(workdir) / f))
         key = _stat_key(path)
         entry = cache.get(str(path))
-        if isinstance(entry, dict) and entry.get("stat") == key:
+        if (isinstance(entry, dict) and entry.get("stat") == key
+                and checksum_algorithm(entry.get("checksum", "")) == algorithm):
             digest = entry["checksum"]
         else:
-            digest = file_checksum(path)
+            digest = file_checksum(path, algorithm)
         sums[str(Path(f))] = digest
         fresh[str(path)] = {"stat": key, "checksum": digest}
     if save and out is not None:
@@ -159,7 +165,9 @@ def _ingest_reason(config: dict, out: Path, workdir, forcerun) -> str | None:
     files = config["run"]["files"]
     if any(not (_base(workdir) / f).exists() for f in files):
         return None  # generated demo files: the synthesize rule makes them
-    current = input_checksums(files, out, workdir)
+    from .io.shotstore import checksum_algorithm
+
+    current = input_checksums(files, out, workdir, algorithm=checksum_algorithm(next(iter(recorded.values()), "")))
     now_order, then_order = _in_name_order(current), _in_name_order(recorded)
     if [d for _, d in now_order] != [d for _, d in then_order]:
         then = dict(then_order)

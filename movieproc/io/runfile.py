@@ -355,10 +355,26 @@ def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
     return out
 
 
-def read_frames(info: RunInfo, start: int, stop: int) -> np.ndarray:
-    """Read detector frames of shots [start, stop) in their stored dtype (n, ny, nx)."""
-    out = np.empty((stop - start, *info.frames_shape), dtype=info.data_dtype)
+def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+    """Read detector frames of shots [start, stop) in their stored dtype (n, ny, nx).
+
+    The frames go straight from HDF5 into ``out`` (or a new array) with ``read_direct``:
+    no intermediate copy of the block. ``out`` (C-contiguous, the stored dtype, at least
+    ``stop - start`` frames) lets a caller reuse one buffer for every block; the returned
+    array is its first ``stop - start`` frames.
+    """
+    n = stop - start
+    if out is None:
+        out = np.empty((n, *info.frames_shape), dtype=info.data_dtype)
+    elif out.dtype != info.data_dtype or out.shape[1:] != tuple(info.frames_shape) or out.shape[0] < n \
+            or not out.flags.c_contiguous:
+        raise ValueError(f"out: expected a C-contiguous {info.data_dtype} array of at least "
+                         f"({n}, {', '.join(map(str, info.frames_shape))}), found {out.dtype} {out.shape}")
     for path, lo, hi, g in info.locate(start, stop):
         with _open(path) as h5:
-            out[g - start:g - start + (hi - lo)] = _read(h5, "frames", path, slice(lo, hi))
-    return out
+            try:
+                h5["frames"].read_direct(out, np.s_[lo:hi], np.s_[g - start:g - start + (hi - lo)])
+            except _H5_ERRORS as exc:
+                raise InputError(f"{path}:frames", f"data that cannot be read ({_short(exc)})",
+                                 "an intact run file (copy it again from the source)") from None
+    return out[:n]

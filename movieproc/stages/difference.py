@@ -105,8 +105,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         del keep, index
         for name in ("pulse_id", "pump_on"):  # the largest fields, not needed beyond the references
             shots.table.drop(name)
-        weights = covariance.bootstrap_weights(np.random.default_rng(differences["seed"]), n_boot,
-                                               shots.n_shots) if n_boot else None
+        weights = covariance.ReplicateWeights(differences["seed"], n_boot, shots.n_shots) if n_boot else None
         boot = covariance.BootstrapSums.zeros(n_boot, nbins, shots.q.size) if n_boot else None
         work = partial(_chunk_sums, shots=shots, on_idx=on_idx, refs=refs, on_bin=on_bin, nbins=nbins,
                        differences=differences, weights=weights)
