@@ -5,6 +5,8 @@ Plain matplotlib on arrays; the render stage reads the movie and calls these.
 
 from __future__ import annotations
 
+from typing import Any
+
 import matplotlib
 
 matplotlib.use("Agg")
@@ -596,7 +598,7 @@ def animation(path, q, delay, data, err, model, positions, element, label=None, 
         fig.suptitle(title or "movie")
         fig.canvas.draw()
         fig.set_layout_engine("none")  # the layout is fixed now: no re-layout per frame
-        canvas = fig.canvas
+        canvas: Any = fig.canvas  # Agg: copy_from_bbox, restore_region, buffer_rgba
         background = canvas.copy_from_bbox(fig.bbox)
         frames = []
         for i in rows:

@@ -7,12 +7,13 @@ settings never leak into a user's own plots when movieproc is used as a library.
 from __future__ import annotations
 
 import contextlib
+from typing import Any
 
 import numpy as np
 from matplotlib import ticker
 
 #: Settings every figure uses: sizes readable in a two-column paper at full width and on a slide.
-RC = {
+RC: dict[str, Any] = {
     "font.size": 9.0,
     "axes.titlesize": 10.0,
     "axes.labelsize": 9.0,
@@ -58,7 +59,7 @@ def figure_style():
     """Context in which movieproc draws its figures."""
     import matplotlib
 
-    with matplotlib.rc_context(RC):
+    with matplotlib.rc_context(RC):  # type: ignore[arg-type]  # keys checked by matplotlib at run time
         yield
 
 
@@ -94,8 +95,8 @@ def delay_axis(ax, delay, which="x", label="delay (ps)"):
         axis.set_major_locator(ticker.SymmetricalLogLocator(base=10, linthresh=DELAY_LINTHRESH_PS,
                                                             subs=[1.0]))
         axis.set_minor_locator(ticker.SymmetricalLogLocator(base=10, linthresh=DELAY_LINTHRESH_PS,
-                                                            subs=np.arange(2, 10)))
-        lin = ticker.FixedLocator(np.array([-1.0, -0.5, 0.0, 0.5, 1.0]) * DELAY_LINTHRESH_PS)
+                                                            subs=[float(k) for k in range(2, 10)]))
+        lin = ticker.FixedLocator([k * DELAY_LINTHRESH_PS for k in (-1.0, -0.5, 0.0, 0.5, 1.0)])
         axis.set_major_locator(_Union(axis.get_major_locator(), lin))
     axis.set_major_formatter(ticker.FuncFormatter(_plain))
     (ax.set_xlabel if which == "x" else ax.set_ylabel)(label)
@@ -114,6 +115,8 @@ class _Union(ticker.Locator):
         self.second.set_axis(axis)
 
     def __call__(self):
+        if self.axis is None:
+            return np.array([])
         vmin, vmax = self.axis.get_view_interval()
         ticks = np.union1d(self.first(), self.second())
         low, high = min(vmin, vmax), max(vmin, vmax)
