@@ -7,6 +7,7 @@
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
     movieproc calibrate detector geometry from a calibrant powder image
+    movieproc render    re-draw the figures and report.html of an existing movie (runs nothing)
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
@@ -96,6 +97,7 @@ def _run(config, args):
         return
     print(f"\nmovie:   {out / 'movie.zarr'}")
     print(f"figures: {out / 'figures'}")
+    print(f"report:  {out / 'figures' / 'report.html'}")
     print(f"updated: {len(updated)} output(s)" + ("" if updated else " (everything was up to date)"))
     movie = out / "movie.zarr"
     if movie.exists():
@@ -293,9 +295,10 @@ def build_parser():
     add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command
+    from . import calibrate_command, render_command
 
     calibrate_command.add_parser(sub)
+    render_command.add_parser(sub)
     return parser
 
 
