@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .. import progress
 from ..io import store
 from ..render import figures, kinetics, report, style, timing
 from ..warning_groups import summary_lines
@@ -148,10 +149,11 @@ def read_shot_timing(delays_path, shots_path):
 class _Figures:
     """Where the figures go, in which formats, and what was written (names relative to the folder)."""
 
-    def __init__(self, folder: Path, dpi: int, formats):
+    def __init__(self, folder: Path, dpi: int, formats, counter=None):
         self.folder, self.dpi, self.formats = folder, dpi, list(formats)
         self.written: list[str] = []
         self.embedded: list[report.Figure] = []
+        self.counter = counter  # a progress bar, updated once per figure
 
     def save(self, fig, name, caption=""):
         for fmt in self.formats:
@@ -159,6 +161,8 @@ class _Figures:
             self.written.append(f"{name}.{fmt}")
         self.embedded.append(report.Figure(name, caption, figures.png_bytes(fig, REPORT_DPI)))
         figures.plt.close(fig)
+        if self.counter is not None:
+            self.counter.update(1)
 
 
 def run(inputs: dict, out: Path, config: dict) -> list:
@@ -172,12 +176,13 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     out.parent.mkdir(parents=True, exist_ok=True)
     movie = read_movie(inputs["movie"])
     shots = read_shot_timing(inputs.get("delays"), inputs.get("shots"))
-    figs = _Figures(out.parent, rcfg["dpi"], rcfg.get("formats", ["png"]))
-    with style.figure_style():
+    with progress.bar(None, "render", "figures") as counter, style.figure_style():
+        figs = _Figures(out.parent, rcfg["dpi"], rcfg.get("formats", ["png"]), counter)
         draw_all(movie, figs, name, rcfg, shots)
         if rcfg["animation"]:
             _animation(movie, figs.folder / ANIMATION, name, rcfg)
             figs.written.append(ANIMATION)
+            counter.update(1)
     report.write(figs.folder / REPORT, report.Content(
         name=name, movie=movie, figures=figs.embedded, render_config=rcfg,
         animation=ANIMATION if rcfg["animation"] else None, shot_timing=shots is not None))
