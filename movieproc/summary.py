@@ -8,6 +8,7 @@ import numpy as np
 
 from .io import runfile, store
 from .shots.timing import timing_correction
+from .warning_groups import summary_lines
 
 
 def summarize_run(files, timing: dict | None = None) -> str:
@@ -98,7 +99,5 @@ def summarize_movie(path) -> str:
                 for k, v in a[key].items()))
             if not a.get("fit_converged", True):
                 lines.append("FIT DID NOT CONVERGE: the parameters above are not reliable")
-    warns = a.get("warnings", [])
-    lines.append(f"warnings: {len(warns)}")
-    lines += [f"  {w}" for w in warns]
+    lines += summary_lines(a.get("warnings", []))
     return "\n".join(lines)

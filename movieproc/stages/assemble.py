@@ -12,6 +12,7 @@ from pathlib import Path
 
 from ..io import store
 from ..safety import SAFETY
+from ..warning_groups import summary_lines
 from .common import now, versions
 
 log = logging.getLogger("movieproc.assemble")
@@ -78,6 +79,6 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         _copy_group(binned, movie)
         for g in extras:
             _copy_group(g, movie)
-    log.info("movie written to %s (%d warnings)", out, len(warnings))
-    for w in warnings:
-        log.info("  %s", w)
+    log.info("movie written to %s", out)
+    for line in summary_lines(warnings):
+        log.info("%s", line)
