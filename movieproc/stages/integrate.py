@@ -60,6 +60,11 @@ CONFIG_KEYS = {"variance": "detector.variance", "sectors": "detector.sectors",
                "scheduler": "compute.scheduler"}
 #: q points named in full in an error message before it says "...".
 NAMED_Q_POINTS = 6
+#: Tasks per worker the frames are split into at least (each task a whole number of store chunks), so
+#: that every worker has work to the end: one task of compute.chunk_shots frames would leave the other
+#: workers idle on a run of a few thousand frames.
+TASKS_PER_WORKER = 4
+
 #: Frames averaged for the geometry check: enough for a clear solvent ring, cheap next to the run.
 CHECK_FRAMES = 32
 UNITS = "detector units / (solid angle and polarization factors)"
@@ -354,12 +359,24 @@ def _integrate_range(start, stop, info, setup, paths, block):
     return excluded, lost_sector, lost_var
 
 
-def _integrate_all(info, setup, paths, compute, warnings) -> int:
-    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out."""
+def _block_frames(info) -> int:
+    """Frames read and integrated at once: about BLOCK_BYTES, a multiple of the kernel's lanes."""
     frame_bytes = int(np.prod(info.frame_shape)) * info.data_dtype.itemsize
-    block = max(integration.LANES, BLOCK_BYTES // frame_bytes // integration.LANES * integration.LANES)
+    return max(integration.LANES, BLOCK_BYTES // frame_bytes // integration.LANES * integration.LANES)
+
+
+def task_frames(n_shots: int, chunk_shots: int, workers: int, block: int) -> int:
+    """Frames per task (and per store chunk): at most ``chunk_shots``, small enough for
+    :data:`TASKS_PER_WORKER` tasks per worker, at least one read block."""
+    want = -(-int(n_shots) // (TASKS_PER_WORKER * max(1, int(workers))))
+    return max(1, min(int(chunk_shots), max(int(block), want)))
+
+
+def _integrate_all(info, setup, paths, compute, chunk, warnings) -> int:
+    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out."""
+    block = _block_frames(info)
     work = partial(_integrate_range, info=info, setup=setup, paths=paths, block=block)
-    results = map_ranges(work, chunk_ranges(info.n_shots, int(compute["chunk_shots"])), compute["workers"],
+    results = map_ranges(work, chunk_ranges(info.n_shots, chunk), compute["workers"],
                          compute["scheduler"], compute["progress"], "integrate")
     excluded, lost_sector, lost_var = (int(sum(r[i] for r in results)) for i in range(3))
     if lost_sector:
@@ -411,10 +428,10 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         "pixels_left_out": setup.reasons, "pixels_used": setup.used, "geometry_check": ring,
         "written": now(), "versions": versions(),
     }
+    chunk = task_frames(info.n_shots, compute["chunk_shots"], compute["workers"], _block_frames(info))
     with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
-        group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon),
-                                     int(compute["chunk_shots"]), attrs)
-        excluded = _integrate_all(info, setup, paths, compute, warnings)
+        group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon), chunk, attrs)
+        excluded = _integrate_all(info, setup, paths, compute, chunk, warnings)
         store.update_attrs(group, {"shot_pixels_left_out": excluded, "warnings": list(warnings)})
     log.info("integrated %d shots onto %d q points (reference %.4f keV, energy-aware %s); %d shot pixels left "
              "out (non-finite or saturated); wrote %s", info.n_shots, setup.layout.q.size, setup.reference_energy,
