@@ -62,8 +62,8 @@ def summarize_movie(path) -> str:
     delay = store.read(m, "delay")
     n = store.read(m, "n_shots")
     q = store.read(m, "q")
-    diff = store.read(m, "diff")
-    err = store.read(m, "diff_err")
+    diff = store.read(m, "difference")
+    err = store.read(m, "difference_error")
     low = store.read(m, "low_count")
     a = m.attrs
     lines = [
@@ -74,7 +74,7 @@ def summarize_movie(path) -> str:
         f"pump-on shots per bin {int(n.min())}-{int(n.max())} (median {int(np.median(n))})",
         f"q: {q.size} points {q[0]:.3g}-{q[-1]:.3g} 1/Å",
         f"difference: max |dS| {np.nanmax(np.abs(diff)):.3g}, median standard error {np.nanmedian(err):.3g} "
-        f"({m['diff'].attrs.get('units', '')})",
+        f"({m['difference'].attrs.get('units', '')})",
     ]
     sc = a.get("selection_counts", {})
     if sc:

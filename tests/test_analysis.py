@@ -111,8 +111,9 @@ def test_fit_recovers_the_scenario(reduced):
 @pytest.mark.slow
 def test_structure_per_delay_matches_truth(reduced):
     a = _analyze(reduced, "analysis.zarr")
-    est = store.read(a, "geometry_Ir-Ir")
-    lo, hi = store.read(a, "geometry_Ir-Ir_lower"), store.read(a, "geometry_Ir-Ir_upper")
+    assert [str(p) for p in a["parameter"][...]] == ["Ir-Ir"]  # the config's fit.geometry names
+    est = store.read(a, "geometry")[:, 0]
+    lo, hi = store.read(a, "geometry_lower")[:, 0], store.read(a, "geometry_upper")[:, 0]
     n = store.read(store.open_group(reduced / "binned.zarr"), "n_shots")
     truth = _true_distance(reduced, a)
     reported = np.isfinite(est)
@@ -124,7 +125,7 @@ def test_structure_per_delay_matches_truth(reduced):
     assert np.nanmax(np.abs(est - truth)[reported]) < 0.05
     # 2-sigma (delta chi2 = 4) intervals contain the truth at >= 90 % of the reported delays
     a2 = _analyze(reduced, "analysis_2sigma.zarr", "fit.delta_chi2=4")
-    lo2, hi2 = store.read(a2, "geometry_Ir-Ir_lower"), store.read(a2, "geometry_Ir-Ir_upper")
+    lo2, hi2 = store.read(a2, "geometry_lower")[:, 0], store.read(a2, "geometry_upper")[:, 0]
     inside = (lo2 <= truth + 1e-9) & (truth - 1e-9 <= hi2)
     assert inside[reported].mean() >= 0.9, inside[reported].mean()
     assert np.all(lo[reported] <= est[reported]) and np.all(est[reported] <= hi[reported])
@@ -154,7 +155,7 @@ def test_solvent_terms_matter(reduced):
     # and so is the structure at late delays, where heating is largest
     truth = _true_distance(reduced, on)
     after = delay > 2
-    est_on, est_off = store.read(on, "geometry_Ir-Ir")[after], store.read(off, "geometry_Ir-Ir")[after]
+    est_on, est_off = store.read(on, "geometry")[after, 0], store.read(off, "geometry")[after, 0]
     both = np.isfinite(est_on) & np.isfinite(est_off)
     assert both.sum() >= 3
     err_on, err_off = np.abs(est_on - truth[after])[both], np.abs(est_off - truth[after])[both]
@@ -200,12 +201,12 @@ def test_bootstrap_over_shots(reduced):
     difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
                     "bins": reduced / "bins.zarr"}, reduced / "binned_boot.zarr", cfg)
     b = store.open_group(reduced / "binned_boot.zarr")
-    boot = store.read(b, "diff_boot")
+    boot = store.read(b, "difference_replicates")
     assert boot.shape[0] == 12
     # each replicate is a resampled estimate of the same per-bin mean: the replicates
     # scatter about the full-data diff by about its standard error (ratio ~1; the bootstrap
     # of a mean reproduces the standard error, Efron & Tibshirani 1993, ch. 6, from memory)
-    diff, err = store.read(b, "diff"), store.read(b, "diff_err")
+    diff, err = store.read(b, "difference"), store.read(b, "difference_error")
     ok = ~store.read(b, "low_count")
     ratio = np.nanstd(boot[:, ok] - diff[None, ok], axis=0) / err[ok]
     assert 0.7 < np.nanmedian(ratio) < 1.4, np.nanmedian(ratio)

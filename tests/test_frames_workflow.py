@@ -31,7 +31,7 @@ def test_frames_demo_end_to_end(tmp_path):
     out = tmp_path / "out"
     assert any("movie.zarr" in u for u in updated)
     movie = xr.open_zarr(out / "movie.zarr", consolidated=False)
-    assert movie["diff"].dims == ("delay", "q") and movie["q"].attrs["units"] == "1/Å"
+    assert movie["difference"].dims == ("delay", "q") and movie["q"].attrs["units"] == "1/Å"
     np.testing.assert_allclose(movie["q"].values[[0, -1]], [0.75, 5.0])
     shots = store.open_group(out / "shots.zarr")
     assert shots.attrs["mode"] == "frames"
@@ -42,7 +42,7 @@ def test_frames_demo_end_to_end(tmp_path):
     q_truth, table = store.read(t, "q"), store.read(t, "diff_true")
     q = movie["q"].values
     on_q = np.stack([np.interp(q, q_truth, row) for row in table])
-    diff, err = movie["diff"].values, movie["diff_err"].values
+    diff, err = movie["difference"].values, movie["difference_error"].values
     truth = np.stack([_interp_rows(grid, on_q, true_delay[index == k]).mean(0) for k in range(diff.shape[0])])
     z = (diff - truth) / err
     # the acceptance figure for recovery: within 3 standard errors at >= 95 % of points

@@ -46,18 +46,18 @@ def test_demo_command_writes_movie_and_figures(demo_run):
 def test_movie_opens_with_xarray_named_dims_and_units(demo_run):
     assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
     ds = xr.open_zarr(demo_run.movie, consolidated=False)
-    assert ds["diff"].dims == ("delay", "q") and ds["diff_err"].dims == ("delay", "q")
+    assert ds["difference"].dims == ("delay", "q") and ds["difference_error"].dims == ("delay", "q")
     assert ds["n_shots"].dims == ("delay",)
     assert "delay" in ds.coords and "q" in ds.coords
     assert ds["delay"].attrs["units"] == "ps" and ds["q"].attrs["units"] == "1/Å"
-    for name in ("diff", "diff_err"):
+    for name in ("difference", "difference_error"):
         assert ds[name].attrs["units"]
     assert np.all(np.diff(ds["delay"].values) > 0)
     edges = C.load()["binning"]["edges_ps"]
     assert ds.sizes["delay"] == len(edges) - 1 and ds.sizes["q"] == ds["q"].size
     # delays lie inside their bins (bin means of corrected delays)
     assert np.all((ds["delay"].values >= edges[:-1]) & (ds["delay"].values <= edges[1:]))
-    assert np.all(np.isfinite(ds["diff"].values)) and np.all(ds["diff_err"].values > 0)
+    assert np.all(np.isfinite(ds["difference"].values)) and np.all(ds["difference_error"].values > 0)
     a = ds.attrs
     assert a["config"]["timing"]["sign"] == -1 and isinstance(a["warnings"], list)
     assert {"numpy", "zarr", "movieproc"} <= set(a["versions"])
@@ -130,7 +130,7 @@ def test_rebinning_recalibration_and_bootstrap_rerun_only_what_follows(tmp_path)
     made, names = remade(run_workflow(C.load(overrides=boot), cores=2, workdir=tmp_path))
     assert made == {"binned.zarr", "movie.zarr"}
     assert "selection.zarr" not in names and "bins.zarr" not in names
-    assert zarr.open_group(str(out / "binned.zarr"), mode="r")["diff_boot"].shape[0] == 3
+    assert zarr.open_group(str(out / "binned.zarr"), mode="r")["difference_replicates"].shape[0] == 3
 
     # a render option re-draws the figures only: the movie is not re-assembled
     redraw = boot + ["render.dpi=90"]

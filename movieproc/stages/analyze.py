@@ -79,7 +79,7 @@ class Data:
     q, delay : ndarray, shapes (n_q,), (n_delay,)
         1/Å, ps.
     diff, err : ndarray, shape (n_delay, n_q)
-        Difference and its standard error (``diff_err``), in ``units``.
+        Difference and its standard error (``difference_error``), in ``units``.
     low : ndarray of bool, shape (n_delay,)
         Bins under the shot threshold.
     off_mean : ndarray, shape (n_delay, n_q)
@@ -127,11 +127,11 @@ def read_data(inputs) -> Data:
         mq = store.read(models, "q")
         if mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12):
             raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {path}")
-    return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "diff").astype(float),
-                err=store.read(b, "diff_err").astype(float), low=store.read(b, "low_count"),
+    return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "difference").astype(float),
+                err=store.read(b, "difference_error").astype(float), low=store.read(b, "low_count"),
                 off_mean=store.read(b, "off_mean").astype(float), spread=store.read(b, "delay_spread"),
-                boot=store.read(b, "diff_boot").astype(float) if "diff_boot" in b else None,
-                units=b["diff"].attrs.get("units", ""), models=models,
+                boot=store.read(b, "difference_replicates").astype(float) if "difference_replicates" in b else None,
+                units=b["difference"].attrs.get("units", ""), models=models,
                 correlation=store.read(b, "delay_correlation").astype(float) if "delay_correlation" in b else None)
 
 
@@ -449,11 +449,12 @@ def _structures(fcfg, data, use, basis, warnings, amplitude=None):
     positions[np.flatnonzero(use)[sig]] = pos[ff.best_frame[sig]]
     out["positions"] = positions
     out["element"] = np.array([str(e) for e in models["element"][...]])
-    units = {}
-    for name in params:
-        for kind, values in (("", ff.value[name]), ("_lower", ff.lower[name]), ("_upper", ff.upper[name])):
-            out[f"geometry_{name}{kind}"] = _rows(np.where(sig, values, np.nan), use)
-            units[f"geometry_{name}{kind}"] = "Å" if len(fcfg["geometry"][name]) == 2 else "deg"
+    names = list(params)
+    if names:
+        for kind, found in (("geometry", ff.value), ("geometry_lower", ff.lower), ("geometry_upper", ff.upper)):
+            out[kind] = _rows(np.stack([np.where(sig, found[name], np.nan) for name in names], axis=1), use)
+        out["parameter"] = np.array(names)
+    units = {name: "Å" if len(fcfg["geometry"][name]) == 2 else "deg" for name in names}
     if ff.at_end.any():
         warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: "
                      "the trajectory may be too short")
@@ -466,7 +467,8 @@ DIMS = {
     "svd_values": ("component",), "svd_noise": ("component",), "svd_u": ("delay", "component"),
     "svd_v": ("component", "q"), "frame": ("delay",), "frame_amplitude": ("delay",),
     "structure_significant": ("delay",), "positions": ("delay", "atom", "xyz"), "element": ("atom",),
-    "r": ("r",), "solute_realspace": ("delay", "r"),
+    "r": ("r",), "solute_realspace": ("delay", "r"), "geometry": ("delay", "parameter"),
+    "geometry_lower": ("delay", "parameter"), "geometry_upper": ("delay", "parameter"), "parameter": ("parameter",),
 }
 
 
@@ -493,7 +495,7 @@ def _error_note(fit):
     """What the reported errors assume (attrs ``fit_errors``)."""
     if fit.error_model == "correlated bins":
         assumes = ("standard errors of an ordinary weighted fit under differences correlated between delay bins "
-                   "(shared pump-off references): Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc with R the "
+                   "(shared pump-off references): Cov(D_b(q), D_c(q)) = difference_error_b(q) difference_error_c(q) R_bc with R the "
                    "binned store's delay_correlation, no correlation between q points; sandwich covariance scaled by "
                    "chi2 over its expectation under R; linearized (asymptotic)")
     else:
@@ -511,8 +513,9 @@ def _array_attrs(name, result):
          "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
          "solute_realspace": (result.get("realspace") or {}).get("units"), "population": "1", "frame_amplitude": "1",
          "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
-    if name.startswith("geometry_"):
-        u = result["geometry_units"][name]
+    if name.startswith("geometry"):
+        found = set(result["geometry_units"].values())
+        u = found.pop() if len(found) == 1 else "Å (distances), deg (angles)"
     meaning = None
     if name == "solute_realspace":
         meaning = {k: v for k, v in result["realspace"].items() if k != "units"}
@@ -522,7 +525,7 @@ def _array_attrs(name, result):
                               "with differentials per K; normalization: dimensionless nuisance)"}
     elif name.startswith("svd_"):
         meaning = {"meaning": "SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation "
-                              "of 1 / diff_err (dimensionless); svd_noise: noise maps of the same weighting; "
+                              "of 1 / difference_error (dimensionless); svd_noise: noise maps of the same weighting; "
                               "attrs svd_threshold, svd_structured, svd_decision: how the count was made"}
     return u, meaning
 

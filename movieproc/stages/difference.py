@@ -81,7 +81,7 @@ def _references(shots, keep, index, differences, warnings):
 
 
 def run(inputs: dict, out: Path, config: dict) -> None:
-    """Write ``binned.zarr``: diff, diff_err, on_mean, off_mean per (delay, q), delay_correlation.
+    """Write ``binned.zarr``: difference, difference_error, on_mean, off_mean per (delay, q), delay_correlation.
 
     Parameters
     ----------
@@ -141,9 +141,9 @@ def _write(g, q, bins, edges, shared, sums, difference_error, min_shots, differe
                       attrs={"meaning": f"fewer than binning.min_shots = {min_shots} shots"})
     store.write_array(g, "reference_sharing", shared, ["delay"],
                       attrs={"meaning": "n * sum of squared reference weights; 1/k when no reference is shared"})
-    store.write_array(g, "diff", sums.difference.mean().astype(np.float32), ["delay", "q"], units=units)
-    store.write_array(g, "diff_err", difference_error.astype(np.float32), ["delay", "q"], units=units,
-                      attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
+    store.write_array(g, "difference", sums.difference.mean().astype(np.float32), ["delay", "q"], units=units)
+    store.write_array(g, "difference_error", difference_error.astype(np.float32), ["delay", "q"], units=units,
+                      attrs={"meaning": "standard error of difference, accounting for references shared within the bin"})
     store.write_array(g, "on_mean", sums.on.mean().astype(np.float32), ["delay", "q"], units=units)
     store.write_array(g, "off_mean", sums.reference.mean().astype(np.float32), ["delay", "q"], units=units)
 
@@ -152,11 +152,11 @@ def _write_covariance(g, correlation, boot, differences):
     """The between-bin correlation and, when asked, the bootstrap replicates."""
     store.write_array(g, "delay_correlation", correlation, ["delay", "delay_other"], units="1",
                       attrs={"meaning": "correlation between bins' differences caused by shared pump-off "
-                                        "references; Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc"})
+                                        "references; Cov(D_b(q), D_c(q)) = difference_error_b(q) difference_error_c(q) R_bc"})
     if boot is not None:
         replicates = covariance.bootstrap_replicates(boot)
-        store.write_array(g, "diff_boot", replicates.astype(np.float32), ["replicate", "delay", "q"],
+        store.write_array(g, "difference_replicates", replicates.astype(np.float32), ["replicate", "delay", "q"],
                           units=UNITS[differences["normalization"]],
-                          attrs={"meaning": "diff of Poisson-bootstrap replicates over shots (pump-on and "
+                          attrs={"meaning": "difference of Poisson-bootstrap replicates over shots (pump-on and "
                                             "pump-off shots reweighted; ratio estimator per bin)",
                                  "seed": differences["seed"]})

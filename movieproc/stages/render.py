@@ -44,8 +44,8 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     out.parent.mkdir(parents=True, exist_ok=True)
     figs = _Figures(out.parent, rcfg["dpi"])
     q, delay = store.read(m, "q"), store.read(m, "delay")
-    diff, err = store.read(m, "diff"), store.read(m, "diff_err")
-    units = m["diff"].attrs.get("units", "")
+    diff, err = store.read(m, "difference"), store.read(m, "difference_error")
+    units = m["difference"].attrs.get("units", "")
     figs.save(figures.difference_map(q, delay, diff, q_weighted=rcfg["q_weighted"],
                                      low_count=store.read(m, "low_count"), title=f"{name}: difference map",
                                      units=units), "difference_map.png")
@@ -62,7 +62,7 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     geo = _geometry(m, figs, name, delay)
     if rcfg["animation"]:
         els = [str(e) for e in m["element"][...]] if "element" in m else None
-        labels = {g: store.read(m, f"geometry_{g}") for g in geo}
+        labels = {g: store.read(m, "geometry")[:, i] for i, g in enumerate(geo)}
         figures.animation(figs.folder / "movie.gif", q, delay, diff, err, model, _read(m, "positions"), els, labels,
                           rcfg["q_weighted"], units, title=f"{name}: difference and structure per delay")
         figs.written.append(figs.folder / "movie.gif")
@@ -111,15 +111,16 @@ def _kinetics_figure(m, figs, name, delay):
 
 def _geometry(m, figs, name, delay):
     """Figure of the geometric parameters per delay; returns their names."""
-    geo = sorted(k[len("geometry_"):] for k in m.array_keys()
-                 if k.startswith("geometry_") and not k.endswith(("_lower", "_upper")))
+    geo = [str(g) for g in m["parameter"][...]] if "geometry" in m else []
     if not geo:
         return geo
-    vals = {g: store.read(m, f"geometry_{g}") for g in geo}
+    table = store.read(m, "geometry")
+    vals = {g: table[:, i] for i, g in enumerate(geo)}
     if any(np.isfinite(v).any() for v in vals.values()):
-        lo = {g: store.read(m, f"geometry_{g}_lower") for g in geo}
-        hi = {g: store.read(m, f"geometry_{g}_upper") for g in geo}
-        units = {g: m[f"geometry_{g}"].attrs.get("units", "") for g in geo}
+        lower, upper = store.read(m, "geometry_lower"), store.read(m, "geometry_upper")
+        lo = {g: lower[:, i] for i, g in enumerate(geo)}
+        hi = {g: upper[:, i] for i, g in enumerate(geo)}
+        units = {g: m["geometry"].attrs.get("units", "") for g in geo}
         figs.save(figures.structure_parameters(delay, vals, lo, hi, units, title=f"{name}: structure per delay"),
                   "structure.png")
     return geo
