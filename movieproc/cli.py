@@ -7,6 +7,7 @@
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
     movieproc calibrate detector geometry from a calibrant powder image
+    movieproc export    a movie as a netCDF-4 file
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
@@ -285,9 +286,10 @@ def build_parser():
     _add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command
+    from . import calibrate_command, export_command
 
     calibrate_command.add_parser(sub)
+    export_command.add_parser(sub)
     return parser
 
 

@@ -114,7 +114,7 @@ def test_structure_per_delay_matches_truth(reduced):
     assert [str(p) for p in a["parameter"][...]] == ["Ir-Ir"]  # the config's fit.geometry names
     est = store.read(a, "geometry")[:, 0]
     lo, hi = store.read(a, "geometry_lower")[:, 0], store.read(a, "geometry_upper")[:, 0]
-    n = store.read(store.open_group(reduced / "binned.zarr"), "n_shots")
+    n = store.read(store.open_group(reduced / "binned.zarr"), "shot_count")
     truth = _true_distance(reduced, a)
     reported = np.isfinite(est)
     # every bin with enough shots and an excited-state signal gets a structure ...
@@ -207,7 +207,7 @@ def test_bootstrap_over_shots(reduced):
     # scatter about the full-data diff by about its standard error (ratio ~1; the bootstrap
     # of a mean reproduces the standard error, Efron & Tibshirani 1993, ch. 6, from memory)
     diff, err = store.read(b, "difference"), store.read(b, "difference_error")
-    ok = ~store.read(b, "low_count")
+    ok = ~store.read(b, "too_few_shots")
     ratio = np.nanstd(boot[:, ok] - diff[None, ok], axis=0) / err[ok]
     assert 0.7 < np.nanmedian(ratio) < 1.4, np.nanmedian(ratio)
     _run_analyze(reduced / "binned_boot.zarr", reduced / "models.zarr", reduced / "boot.zarr", cfg)
@@ -435,7 +435,7 @@ def test_a_singular_bin_correlation_names_the_references_key(tmp_path):
     # two bins whose differences are the same linear combination of shots: R = [[1, 1], [1, 1]]
     data = analyze.Data(path=tmp_path / "binned.zarr", q=np.zeros(1), delay=np.zeros(2), diff=np.zeros((2, 1)),
                         err=np.ones((2, 1)), low=np.zeros(2, bool), off_mean=np.zeros((2, 1)), spread=np.zeros(2),
-                        boot=None, units="", models=None, correlation=np.ones((2, 2)))
+                        boot=None, units="", units_description="", models=None, correlation=np.ones((2, 2)))
     with pytest.raises(ConfigError) as err:
         analyze._correlation(data, np.ones(2, bool))
     assert err.value.key == "differences.references" and _schema_has(err.value.key)

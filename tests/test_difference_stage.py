@@ -84,7 +84,7 @@ def test_stage_differences_and_correlation_match_an_explicit_reduction(tmp_path)
     assert np.all(np.diag(R, 1) > 0.05)  # the jitter spreads positions over neighbouring bins
     g = store.open_group(tmp_path / "binned.zarr")
     assert list(g["delay_correlation"].metadata.dimension_names) == ["delay", "delay_other"]
-    assert "shared pump-off references" in g["delay_correlation"].attrs["meaning"]
+    assert "shared pump-off references" in g["delay_correlation"].attrs["long_name"]
     assert "difference_replicates" not in got
 
 
@@ -92,7 +92,7 @@ def test_chunking_and_workers_change_nothing(tmp_path):
     make_run(tmp_path, seed=1)
     a = run_stage(tmp_path, "a.zarr", config(bootstrap=4, chunk=16, workers=1))
     b = run_stage(tmp_path, "b.zarr", config(bootstrap=4, chunk=2000, workers=2))
-    for name in ("difference", "difference_error", "on_mean", "off_mean", "delay_correlation", "reference_sharing"):
+    for name in ("difference", "difference_error", "pump_on_mean", "pump_off_mean", "delay_correlation", "reference_sharing"):
         np.testing.assert_allclose(a[name], b[name], rtol=1e-6, atol=1e-9, err_msg=name)
     # bootstrap sums are float64 over float32 products of centred curves: equal to float32 rounding
     np.testing.assert_allclose(a["difference_replicates"], b["difference_replicates"], rtol=0, atol=1e-6)

@@ -47,7 +47,7 @@ def test_movie_opens_with_xarray_named_dims_and_units(demo_run):
     assert demo_run.proc.returncode == 0, demo_run.proc.stderr[-3000:]
     ds = xr.open_zarr(demo_run.movie, consolidated=False)
     assert ds["difference"].dims == ("delay", "q") and ds["difference_error"].dims == ("delay", "q")
-    assert ds["n_shots"].dims == ("delay",)
+    assert ds["shot_count"].dims == ("delay",)
     assert "delay" in ds.coords and "q" in ds.coords
     assert ds["delay"].attrs["units"] == "ps" and ds["q"].attrs["units"] == "1/Å"
     for name in ("difference", "difference_error"):

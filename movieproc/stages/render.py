@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..io import store
+from ..io import movie, store
 from ..render import figures, kinetics
 
 log = logging.getLogger("movieproc.render")
@@ -45,9 +45,9 @@ def run(inputs: dict, out: Path, config: dict) -> list:
     figs = _Figures(out.parent, rcfg["dpi"])
     q, delay = store.read(m, "q"), store.read(m, "delay")
     diff, err = store.read(m, "difference"), store.read(m, "difference_error")
-    units = m["difference"].attrs.get("units", "")
+    units = movie.display_units(m["difference"])
     figs.save(figures.difference_map(q, delay, diff, q_weighted=rcfg["q_weighted"],
-                                     low_count=store.read(m, "low_count"), title=f"{name}: difference map",
+                                     low_count=store.read(m, "too_few_shots"), title=f"{name}: difference map",
                                      units=units), "difference_map.png")
     model = _read(m, "model")
     if model is not None:
@@ -77,12 +77,13 @@ def _analysis_figures(m, figs, name, q, delay, err, model, rcfg):
     """SVD, kinetics, residual and real-space figures, where the movie holds those results."""
     if "svd_values" in m:
         attrs = m.attrs
-        figs.save(figures.svd_summary(q, delay, store.read(m, "svd_values"), store.read(m, "svd_noise"),
-                                      store.read(m, "svd_u"), store.read(m, "svd_v"), attrs.get("svd_components", 0),
-                                      attrs.get("svd_threshold"), attrs.get("svd_structured"),
+        figs.save(figures.svd_summary(q, delay, store.read(m, "svd_values"), store.read(m, "svd_noise_values"),
+                                      store.read(m, "svd_delay_vectors"), store.read(m, "svd_q_vectors"),
+                                      attrs.get("svd_components", 0),
+                                      attrs.get("svd_threshold"), _read(m, "svd_structured"),
                                       attrs.get("svd_decision", ""), title=f"{name}: SVD of the solute difference"),
                   "svd.png")
-    if "population" in m or "solvent_coef" in m:
+    if "population" in m or "solvent_coefficient" in m:
         _kinetics_figure(m, figs, name, delay)
     if model is not None:
         figs.save(figures.residual_map(q, delay, store.read(m, "residual"), err, title=f"{name}: fit residuals"),
@@ -90,22 +91,24 @@ def _analysis_figures(m, figs, name, q, delay, err, model, rcfg):
     if "solute_realspace" in m:
         info = dict(m["solute_realspace"].attrs)
         figs.save(figures.realspace(store.read(m, "r"), delay, store.read(m, "solute_realspace"), rcfg["delays_ps"],
-                                    title=f"{name}: real-space difference (solute)", units=info.get("units", ""),
+                                    title=f"{name}: real-space difference (solute)",
+                                    units=info.get("display_units", ""),
                                     info=info), "realspace.png")
 
 
 def _kinetics_figure(m, figs, name, delay):
     """Fitted populations on a fine grid (named by species), solvent terms and chi2; says when nothing was fitted."""
-    params = m.attrs.get("fit_parameters", {})
+    params = movie.fit_parameters(m)
     text = "\n".join(f"{k:>9s} = {v['value']:.4g} ± {v['error']:.2g} {v.get('units', '').strip('1')}"
                      for k, v in params.items())
-    curves = kinetics.population_curves(dict(m.attrs), delay, _read(m, "population"))
-    mode = m.attrs.get("fit_mode") or (m.attrs.get("config") or {}).get("fit", {}).get("mode", "none")
+    curves = kinetics.population_curves(movie.fit_summary(m), delay, _read(m, "population"))
+    mode = m.attrs.get("fit_mode") or movie.config(m).get("fit", {}).get("mode", "none")
     note = "" if curves is not None else f"no fit configured (fit.mode: {mode}): no populations drawn"
     terms = [str(t) for t in m["term"][...]] if "term" in m else []
-    coef_units = m["solvent_coef"].attrs.get("units", "") if "solvent_coef" in m else ""
-    figs.save(figures.kinetics(delay, curves, _read(m, "solvent_coef"), _read(m, "solvent_coef_err"), terms,
-                               _read(m, "chi2"), text, title=f"{name}: kinetics", coef_units=coef_units, note=note),
+    coef_units = movie.term_units_label(m)
+    figs.save(figures.kinetics(delay, curves, _read(m, "solvent_coefficient"), _read(m, "solvent_coefficient_error"),
+                               terms, _read(m, "reduced_chi_squared"), text, title=f"{name}: kinetics",
+                               coef_units=coef_units, note=note),
               "kinetics.png")
 
 
