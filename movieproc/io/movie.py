@@ -42,7 +42,7 @@ def selection_counts(group) -> dict[str, int]:
 
 
 def fit_parameters(group) -> dict[str, dict]:
-    """Fitted parameters: name -> {value, error, error_independent_bins, units[, bootstrap_error]}.
+    """Fitted parameters: name -> {value, error, error_independent_bins, units[, bootstrap_error, bootstrap]}.
 
     Empty when the store holds no fit. Errors are standard errors; ``units`` is the
     pint string of the parameter (``ps`` or ``1``).
@@ -51,6 +51,7 @@ def fit_parameters(group) -> dict[str, dict]:
     if not names:
         return {}
     units = _strings(group, "fit_parameter_units")
+    boot = _strings(group, "fit_bootstrap")
     columns = {key: np.asarray(group[f"fit_{key}"][...], float)
                for key in ("value", "error", "error_independent_bins", "bootstrap_error") if f"fit_{key}" in group}
     out = {}
@@ -59,6 +60,8 @@ def fit_parameters(group) -> dict[str, dict]:
         if not np.isfinite(entry.get("bootstrap_error", np.nan)):
             entry.pop("bootstrap_error", None)
         entry["units"] = units[i] if units else ""
+        if boot and boot[i]:
+            entry["bootstrap"] = boot[i]
         out[name] = entry
     return out
 

@@ -548,6 +548,10 @@ def _fit_arrays(g, fit, config):
     for var, table, long_name in columns:
         store.write_array(g, var, np.array([float(table.get(k, np.nan)) for k in names]), ["fit_parameter"],
                           units=unit, long_name=long_name, attrs={"description": described + "; " + note})
+    store.write_array(g, "fit_bootstrap", np.array([f"{fit.bootstrap[k].replicates} replicates over "
+                                                     f"{fit.bootstrap[k].over}" if k in fit.bootstrap else ""
+                                                     for k in names]), ["fit_parameter"],
+                      long_name="bootstrap behind fit_bootstrap_error (empty: none)")
     store.write_array(g, "fit_at_bound", np.array([k in fit.at_bound for k in names]), ["fit_parameter"],
                       units=store.DIMENSIONLESS, long_name="flag: the parameter ended at a bound of the fit")
     store.write_array(g, "correlated_parameter", np.array(fit.corr_names), ["correlated_parameter"],
@@ -571,9 +575,7 @@ def _fit_attrs(fit, config):
     note = _error_note(fit)
     return {"fit_mode": config["fit"]["mode"], "fit_reduced_chi2": float(fit.red_chi2),
             "fit_converged": int(bool(fit.converged)), "fit_error_model": note["model"],
-            "fit_error_assumptions": note["assumes"], "fit_error_scale": note["scale_reduced_chi2"],
-            "fit_bootstrap": "; ".join(f"{k}: {info.replicates} replicates over {info.over}"
-                                       for k, info in fit.bootstrap.items())}
+            "fit_error_assumptions": note["assumes"], "fit_error_scale": note["scale_reduced_chi2"]}
 
 
 def _error_note(fit):
