@@ -253,6 +253,54 @@ def missing_geometry(raw: dict) -> list[str]:
     return [f"detector.{k}" for k in GEOMETRY_KEYS if detector.get(k) is None]
 
 
+#: The ``binning`` keys each ``binning.mode`` uses; the other modes' keys are ignored in that mode.
+BINNING_MODE_KEYS = {"width": ("width_ps", "start_ps", "stop_ps"), "population": ("count",), "edges": ("edges_ps",)}
+
+
+def check_binning_keys(raw: dict, overrides=()) -> None:
+    """Refuse a binning key that the chosen ``binning.mode`` would silently ignore.
+
+    A key of another mode is refused when it is given by an override (``--set``), or when the
+    config file (or a layer) gives it with a value other than the schema's default while the mode
+    is not switched by an override: a config written for one mode and switched to another on the
+    command line keeps its old mode's keys without complaint, and a written-out effective config
+    (every default filled in) passes.
+
+    Parameters
+    ----------
+    raw : dict
+        The raw config (:func:`movieproc.config.build`), overrides applied.
+    overrides : sequence of str
+        The ``dotted.key=value`` overrides applied to it.
+
+    Raises
+    ------
+    ConfigError
+        Naming the ignored key and ``binning.mode``, and what to set instead.
+    """
+    from .config import load_schema, parse_override
+
+    binning = raw.get("binning")
+    if not isinstance(binning, dict):
+        return
+    defaults = {k: v.get("default") for k, v in load_schema()["properties"]["binning"]["properties"].items()}
+    mode = binning.get("mode", defaults["mode"])
+    if mode not in BINNING_MODE_KEYS:
+        return  # validation names the bad mode
+    given = {".".join(parse_override(text)[0]) for text in overrides or ()}
+    mode_switched = "binning.mode" in given or "binning" in given
+    for other, keys in BINNING_MODE_KEYS.items():
+        for key in keys:
+            if other == mode or key not in binning or binning[key] is None:
+                continue
+            by_override = f"binning.{key}" in given
+            if by_override or (not mode_switched and binning[key] != defaults.get(key)):
+                how = "--set" if by_override else "the config"
+                raise ConfigError(f"binning.{key}", f"{binning[key]!r} (from {how}) while binning.mode is {mode!r}, "
+                                  "which ignores it", f"binning.mode={other} to use binning.{key} (e.g. --set "
+                                  f"binning.mode={other} binning.{key}={binning[key]}), or no binning.{key}")
+
+
 def check(files, config: dict, base=None) -> list[Problem]:
     """Every problem of ``files`` and the config's input tables under a validated ``config``.
 

@@ -1,18 +1,23 @@
 """The ``movieproc`` command.
 
     movieproc run       run the workflow on a config (default: the demo)
-    movieproc process   process given run files with the default config
+    movieproc process   process given run files with generic settings (config/process.yaml)
     movieproc synth     write a synthetic run of the demo scenario
     movieproc summary   summarize run files or a movie
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
     movieproc calibrate detector geometry from a calibrant powder image
     movieproc export    a movie as a netCDF-4 file
+    movieproc render    re-draw the figures and report.html of an existing movie (runs nothing)
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
-``--set binning.width_ps=0.1 binning.start_ps=-1``. Paths and names given as
+``--set binning.mode=width binning.width_ps=0.1``. Paths and names given as
 options (--out, --name, run files, --config) are taken as they are, never parsed.
+A key of another binning mode than binning.mode is refused, not ignored.
+
+Long work shows its progress on stderr: a bar on a terminal, a plain line per 10 %
+in a log; --quiet shows neither, nor info messages (warnings and errors still).
 """
 
 from __future__ import annotations
@@ -25,33 +30,43 @@ from pathlib import Path
 
 from . import __version__
 from . import config as mpconfig
+from . import progress
 from .safety import SAFETY
 from .errors import MovieprocError
 from .stages.common import setup_logging
 
-#: A correction that narrows the onset by less than this fraction of the nominal width "sharpens
-#: little": with the right sign and calibration it narrows it to the timing-tool's own noise.
-SIGN_CHECK_MIN_GAIN = 0.8
-
-
+#: Generic settings of ``movieproc process`` (and of check / sign-check with run files).
 PROCESS_CONFIG = mpconfig.ROOT / "config" / "process.yaml"
+#: How --help names the default config of the other commands.
+DEFAULT_CONFIG_TEXT = f"{mpconfig.DEFAULT_CONFIG}, the demo"
+
+
+#: Suffixes of files (run files, configs) that a --set list may swallow when they follow its pairs.
+FILE_SUFFIXES = (".h5", ".hdf5", ".nxs", ".yaml", ".yml")
 
 
 class _Extend(argparse.Action):
     """``--set A=1 B=2 --set C=3`` collects [A=1, B=2, C=3]."""
 
     def __call__(self, parser, namespace, values, option_string=None):
+        for value in values:
+            if "=" not in value and (Path(value).suffix.lower() in FILE_SUFFIXES or Path(value).exists()):
+                # a run file after the pairs, taken by --set (other values without '=' are config errors)
+                parser.error(f"{option_string}: {value!r} is not KEY=VALUE; put run files before {option_string}, "
+                             f"or end its pairs with -- (movieproc process {option_string} a.b=1 -- RUN.h5)")
         setattr(namespace, self.dest, list(getattr(namespace, self.dest) or []) + list(values))
 
 
-def _add_set(p):
+def add_set(p):
+    """The ``--set KEY=VALUE ...`` option (several pairs after one --set; repeatable)."""
     p.add_argument("--set", dest="overrides", action=_Extend, nargs="+", default=[], metavar="KEY=VALUE",
-                   help="override config values, e.g. --set timing.sign=-1 binning.count=20 (repeatable)")
+                   help="override config values, several pairs after one --set (values parsed as YAML), e.g. "
+                   "--set timing.sign=-1 differences.references=6; repeatable")
 
 
-def _add_config_args(p, default_config="config/config.yaml, the demo"):
+def _add_config_args(p, default_config=DEFAULT_CONFIG_TEXT):
     p.add_argument("--config", "-c", help=f"config YAML (default: {default_config})")
-    _add_set(p)
+    add_set(p)
     p.add_argument("--cores", type=int, help="cores for the workflow (default 2; with --profile: the profile's, "
                    "else jobs times compute.workers for a cluster executor)")
     p.add_argument("--dry-run", action="store_true", help="show which stages would run, run nothing")
@@ -83,6 +98,7 @@ def _run(config, args):
         return
     print(f"\nmovie:   {out / 'movie.zarr'}")
     print(f"figures: {out / 'figures'}")
+    print(f"report:  {out / 'figures' / 'report.html'}")
     print(f"updated: {len(updated)} output(s)" + ("" if updated else " (everything was up to date)"))
     movie = out / "movie.zarr"
     if movie.exists():
@@ -93,9 +109,24 @@ def _run(config, args):
     print("\nNote: " + SAFETY)
 
 
+def build_config(path=None, overrides=(), layers=()) -> tuple[dict, dict]:
+    """The raw and the validated config of a command (:func:`movieproc.config.build`, then validated),
+    with the binning keys the mode would ignore refused (:func:`movieproc.checks.check_binning_keys`)."""
+    from .checks import check_binning_keys
+
+    raw = mpconfig.build(path, overrides, layers)
+    config = mpconfig.validate(raw)
+    check_binning_keys(raw, overrides)
+    return raw, config
+
+
+def load_config(path=None, overrides=(), layers=()) -> dict:
+    """The validated config of a command (see :func:`build_config`)."""
+    return build_config(path, overrides, layers)[1]
+
+
 def cmd_run(args):
-    config = mpconfig.load(args.config, args.overrides)
-    _run(config, args)
+    _run(load_config(args.config, args.overrides), args)
 
 
 def read_geometry(path) -> dict:
@@ -126,9 +157,8 @@ def process_layers(files, out=None, name=None, geometry=None) -> list:
 def process_config(args) -> dict:
     """The validated config of ``movieproc process`` (see :func:`process_layers`); frames need an
     explicit geometry."""
-    raw = mpconfig.build(args.config or PROCESS_CONFIG, args.overrides,
-                         process_layers(args.files, args.out, args.name, args.geometry))
-    config = mpconfig.validate(raw)
+    raw, config = build_config(args.config or PROCESS_CONFIG, args.overrides,
+                               process_layers(args.files, args.out, args.name, args.geometry))
     _require_geometry(raw, config)
     return config
 
@@ -167,8 +197,7 @@ def cmd_check(args):
         layers, path = [], args.config
     problems = []
     try:
-        raw = mpconfig.build(path, args.overrides, layers)
-        config = mpconfig.validate(raw)
+        raw, config = build_config(path, args.overrides, layers)
     except ConfigError as exc:
         problems.append(Problem.of(exc))
         config = None
@@ -196,29 +225,6 @@ def cmd_synth(args):
     print(f"process them with: movieproc process {' '.join(str(f) for f in files)}")
 
 
-def cmd_sign_check(args):
-    from .stages.delays import check_sign
-
-    config = mpconfig.load(args.config, args.overrides)
-    out = Path(config["output_dir"])
-    shots, sel = out / "shots.zarr", out / "selection.zarr"
-    if not (shots.exists() and sel.exists()):
-        from .errors import InputError
-
-        raise InputError(out, "no shots.zarr and selection.zarr", "a run processed up to the select stage "
-                         "(movieproc run with the same --config)")
-    r = check_sign(shots, sel, config, args.window)
-    print(f"onset 10-90 % width from {r['shots']} pump-on shots within {args.window} ps of time zero:")
-    print(f"  nominal delays:         {1000 * r['nominal']:7.1f} fs")
-    print(f"  correction sign +1:     {1000 * r['plus']:7.1f} fs")
-    print(f"  correction sign -1:     {1000 * r['minus']:7.1f} fs")
-    best = r["best"]
-    print(f"the onset is sharpest with timing.sign = {best:+d} (config has {config['timing']['sign']:+d})"
-          + ("" if best == config["timing"]["sign"] else ": set --set timing.sign=%d" % best))
-    if min(r["plus"], r["minus"]) > SIGN_CHECK_MIN_GAIN * r["nominal"]:
-        print("warning: neither sign sharpens the onset much: check timing.calibration_fs and the edge units")
-
-
 def cmd_summary(args):
     from .summary import summarize_movie, summarize_run
 
@@ -239,7 +245,10 @@ def build_parser():
     parser = argparse.ArgumentParser(prog="movieproc", description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"movieproc {__version__}")
-    parser.add_argument("-v", "--verbose", action="store_true", help="debug logging")
+    loud = parser.add_mutually_exclusive_group()
+    loud.add_argument("-v", "--verbose", action="store_true", help="debug logging, and tracebacks of errors")
+    loud.add_argument("-q", "--quiet", action="store_true", help="no progress bars or info messages (of movieproc "
+                      "and Snakemake); warnings and errors are still shown")
     sub = parser.add_subparsers(dest="command", required=True)
 
     p = sub.add_parser("run", help="run the workflow on a config (default: the demo config)")
@@ -247,54 +256,59 @@ def build_parser():
     _add_executor_args(p)
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("process", help="process run files with generic settings (config/process.yaml) plus overrides")
+    p = sub.add_parser("process", help=f"process run files with generic settings ({PROCESS_CONFIG}) plus overrides")
     p.add_argument("files", nargs="+", help="HDF5 run files (shots concatenated in file-name order)")
     p.add_argument("--out", "-o", help="output folder (default results/<first file name>)")
     p.add_argument("--name", help="run label for figures")
     p.add_argument("--geometry", metavar="FILE", help="YAML file whose detector: section gives the detector "
                    "geometry (needed for frames; --set values override it)")
-    _add_config_args(p, default_config="config/process.yaml, generic settings")
+    _add_config_args(p, default_config=f"{PROCESS_CONFIG}, generic settings")
     _add_executor_args(p)
     p.set_defaults(func=cmd_process)
 
     p = sub.add_parser("check", help="list every problem of run files and a config at once (exit 1 if any is fatal)")
     p.add_argument("files", nargs="*", help="HDF5 run files (default: run.files of the config)")
-    p.add_argument("--config", "-c", help="config YAML (default: config/process.yaml with files given, "
-                   "else config/config.yaml)")
+    p.add_argument("--config", "-c", help=f"config YAML (default: {PROCESS_CONFIG} with files given, "
+                   f"else {DEFAULT_CONFIG_TEXT})")
     p.add_argument("--out", "-o", help="output folder the run would use")
     p.add_argument("--geometry", metavar="FILE", help="YAML file with a detector: section")
-    _add_set(p)
+    add_set(p)
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("synth", help="write a synthetic run of the demo scenario with its ground truth")
     p.add_argument("out", help="output folder")
-    p.add_argument("--scenario", default=str(mpconfig.ROOT / "demo_data" / "scenario.yaml"))
-    p.add_argument("--shots", type=int, default=24000)
-    p.add_argument("--seed", type=int, default=2026)
-    p.add_argument("--files", type=int, default=2)
-    p.add_argument("--mode", choices=["curves", "frames"], default="curves")
+    p.add_argument("--scenario", default=str(mpconfig.ROOT / "demo_data" / "scenario.yaml"),
+                   help="scenario YAML: structures, kinetics, timing and noise of the run (default: %(default)s)")
+    p.add_argument("--shots", type=int, default=24000, help="shots in all files together (default %(default)s)")
+    p.add_argument("--seed", type=int, default=2026, help="seed of the random draws (default %(default)s)")
+    p.add_argument("--files", type=int, default=2, help="run files to split the shots into (default %(default)s)")
+    p.add_argument("--mode", choices=["curves", "frames"], default="curves",
+                   help="write integrated curves or detector frames (default %(default)s)")
     p.set_defaults(func=cmd_synth)
 
-    p = sub.add_parser("sign-check", help="measure which sign of the timing correction sharpens the onset")
-    _add_config_args(p)
-    p.add_argument("--window", type=float, default=1.0, help="ps around time zero to use (default 1)")
-    p.set_defaults(func=cmd_sign_check)
+    from . import sign_check_command
+
+    sign_check_command.add_parser(sub)
 
     p = sub.add_parser("summary", help="summarize run files, or a movie store")
     p.add_argument("paths", nargs="+", help="run files (HDF5) or one movie.zarr")
     p.add_argument("--config", "-c", help="config whose timing calibration converts edges to fs")
-    _add_set(p)
+    add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command, export_command
+    from . import calibrate_command, export_command, render_command
 
     calibrate_command.add_parser(sub)
     export_command.add_parser(sub)
+    render_command.add_parser(sub)
     return parser
 
 
 def main(argv=None):
     args = build_parser().parse_args(argv)
+    was_quiet = progress.quiet()
+    if args.quiet:
+        progress.set_quiet(True)  # also for the Snakemake jobs this run starts
     setup_logging(logging.DEBUG if args.verbose else logging.INFO)
     try:
         return int(args.func(args) or 0)
@@ -309,6 +323,8 @@ def main(argv=None):
         where = f"{exc.filename}: " if exc.filename else ""
         print(f"movieproc: error: {where}{exc.strerror or exc} (rerun with -v for the traceback)", file=sys.stderr)
         return 2
+    finally:
+        progress.set_quiet(was_quiet)
 
 
 if __name__ == "__main__":

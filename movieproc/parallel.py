@@ -32,11 +32,12 @@ import atexit
 import contextvars
 import logging
 import threading
-from contextlib import AbstractContextManager, contextmanager, nullcontext
+from contextlib import contextmanager
 
 import dask
 import numpy as np
 
+from . import progress as _progress
 from .errors import WorkflowFailed
 
 log = logging.getLogger(__name__)
@@ -73,17 +74,19 @@ def compute_settings(compute: dict):
     ----------
     compute : dict
         The ``compute`` section: ``connect_timeout_s`` (s) and ``memory_per_worker``
-        (e.g. ``"4GB"`` or ``"auto"``) are read; other keys are ignored.
+        (e.g. ``"4GB"`` or ``"auto"``) are read, and ``progress`` (show progress bars in the
+        block, :mod:`movieproc.progress`); other keys are ignored.
     """
     token = _SETTINGS.set({key: compute[key] for key in ("connect_timeout_s", "memory_per_worker")
                            if compute.get(key) is not None})
     try:
-        yield
+        with _progress.enabled_in(compute.get("progress", True) is not False):
+            yield
     finally:
         _SETTINGS.reset(token)
 
 
-def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progress: bool = True,
+def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progress=True,
                label: str = "chunks"):
     """Call ``fn(start, stop)`` for every range in parallel; return results in order.
 
@@ -100,10 +103,12 @@ def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progres
     scheduler : str
         ``threads``, ``processes``, ``synchronous``, ``local-cluster`` or a
         dask.distributed scheduler address (``tcp://host:port``, ``tls://...``).
-    progress : bool
-        Show dask's progress bar on stderr (local schedulers).
+    progress : bool or tqdm
+        Show a bar of the chunks on stderr (:mod:`movieproc.progress`; not in quiet mode), or
+        advance this bar (made with :func:`movieproc.progress.bar`) by one per chunk: one bar
+        over several calls.
     label : str
-        Name used in the log line.
+        Name used in the log line and the bar.
 
     Raises
     ------
@@ -124,19 +129,15 @@ def map_ranges(fn, ranges, workers: int = 1, scheduler: str = "threads", progres
 
     tasks = [dask.delayed(guarded)(a, b) for a, b in ranges]
     log.info("%s: %d tasks on %s with %d worker(s)", label, len(tasks), scheduler, workers)
+    target = progress if isinstance(progress, _progress.Bar) else None
+    show = target is None and bool(progress)
     if scheduler == LOCAL_CLUSTER or is_address(scheduler):
-        return _unwrap(_distributed(tasks, scheduler, max(1, int(workers)), label))
+        return _unwrap(_distributed(tasks, scheduler, max(1, int(workers)), label, show, target))
     if scheduler not in LOCAL_SCHEDULERS:
         raise ValueError(f"scheduler must be one of {', '.join(LOCAL_SCHEDULERS)}, {LOCAL_CLUSTER} or a "
                          f"tcp:// or tls:// address, got {scheduler!r}")
-    if progress:
-        from dask.diagnostics import ProgressBar
-
-        bar: AbstractContextManager = ProgressBar(minimum=2.0)
-    else:
-        bar = nullcontext()
-    with bar:
-        return _unwrap(dask.compute(*tasks, scheduler=scheduler, num_workers=max(1, int(workers))))
+    callbacks = _progress.DaskProgress(label, "chunks", target).callbacks if show or target is not None else []
+    return _unwrap(dask.compute(*tasks, scheduler=scheduler, num_workers=max(1, int(workers)), callbacks=callbacks))
 
 
 def is_address(scheduler: str) -> bool:
@@ -144,8 +145,9 @@ def is_address(scheduler: str) -> bool:
     return scheduler.startswith(("tcp://", "tls://"))
 
 
-def _distributed(tasks, scheduler: str, workers: int, label: str) -> list:
-    """Compute ``tasks`` on a distributed scheduler (an address, or this process's LocalCluster)."""
+def _distributed(tasks, scheduler: str, workers: int, label: str, show: bool = False, target=None) -> list:
+    """Compute ``tasks`` on a distributed scheduler (an address, or this process's LocalCluster); a bar
+    of the chunks done when ``show``, or ``target`` advanced (see :func:`map_ranges`)."""
     from distributed import Client
     from distributed.scheduler import KilledWorker
 
@@ -161,7 +163,10 @@ def _distributed(tasks, scheduler: str, workers: int, label: str) -> list:
                          "that this machine can reach it, or raise the timeout") from None
     with client:
         try:
-            return client.gather(client.compute(tasks))
+            futures = client.compute(tasks)
+            if show or target is not None:
+                _progress.track_futures(futures, label, "chunks", target)
+            return client.gather(futures)
         except KilledWorker as exc:
             raise WorkflowFailed(f"{label}: a chunk was lost with the dask worker(s) running it on {address} "
                                  f"({exc}); nothing of this stage was kept: run again to complete it") from exc

@@ -8,6 +8,7 @@ import numpy as np
 
 from .io import movie, runfile, store
 from .shots.timing import timing_correction
+from .warning_groups import summary_lines
 
 
 def summarize_run(files, timing: dict | None = None) -> str:
@@ -82,9 +83,7 @@ def summarize_movie(path) -> str:
         few = ", ".join(f"{d:.3g} ps ({c})" for d, c in zip(delay[low], n[low], strict=True))
         lines.append(f"bins with too few shots: {few}")
     lines += _fit_lines(m)
-    warns = movie.warnings(m)
-    lines.append(f"warnings: {len(warns)}")
-    lines += [f"  {w}" for w in warns]
+    lines += summary_lines(movie.warnings(m))
     return "\n".join(lines)
 
 

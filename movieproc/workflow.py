@@ -98,15 +98,20 @@ def _stat_key(path: Path) -> list:
     return [st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino]
 
 
-def input_checksums(files, out: Path | None = None, workdir=None, save: bool = False) -> dict:
-    """Checksums of the run files as the shots store records them (``{str(Path(f)): 'sha256:...'}``).
+def input_checksums(files, out: Path | None = None, workdir=None, save: bool = False,
+                    algorithm: str | None = None) -> dict:
+    """Checksums of the run files as the shots store records them (``{str(Path(f)): 'xxh3_128:...'}``).
 
     Each file is hashed once: the result is cached in ``<out>/.movieproc-checksums.json``
     under the file's absolute path with its size, modification time, change time and inode,
     and hashed again only when one of these differs. The change time cannot be set back by
     ``cp -p`` or ``rsync -t``, so a file replaced with an older modification time is hashed again.
+    ``algorithm`` (default: the shots store's, :data:`movieproc.io.shotstore.CHECKSUM_ALGORITHM`)
+    lets a store written with another hash be compared without re-ingesting it.
     """
-    from .io.shotstore import file_checksum
+    from .io.shotstore import CHECKSUM_ALGORITHM, checksum_algorithm, file_checksum
+
+    algorithm = algorithm or CHECKSUM_ALGORITHM
 
     cache_path = out / CHECKSUM_CACHE if out is not None else None
     try:
@@ -118,10 +123,11 @@ def input_checksums(files, out: Path | None = None, workdir=None, save: bool = F
         path = Path(os.path.abspath(_base(workdir) / f))
         key = _stat_key(path)
         entry = cache.get(str(path))
-        if isinstance(entry, dict) and entry.get("stat") == key:
+        if (isinstance(entry, dict) and entry.get("stat") == key
+                and checksum_algorithm(entry.get("checksum", "")) == algorithm):
             digest = entry["checksum"]
         else:
-            digest = file_checksum(path)
+            digest = file_checksum(path, algorithm)
         sums[str(Path(f))] = digest
         fresh[str(path)] = {"stat": key, "checksum": digest}
     if save and out is not None:
@@ -159,7 +165,9 @@ def _ingest_reason(config: dict, out: Path, workdir, forcerun) -> str | None:
     files = config["run"]["files"]
     if any(not (_base(workdir) / f).exists() for f in files):
         return None  # generated demo files: the synthesize rule makes them
-    current = input_checksums(files, out, workdir)
+    from .io.shotstore import checksum_algorithm
+
+    current = input_checksums(files, out, workdir, algorithm=checksum_algorithm(next(iter(recorded.values()), "")))
     now_order, then_order = _in_name_order(current), _in_name_order(recorded)
     if [d for _, d in now_order] != [d for _, d in then_order]:
         then = dict(then_order)
@@ -310,7 +318,7 @@ def _prepare(config: dict, forcerun, dryrun: bool, workdir) -> tuple[Path, set]:
 
 
 def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=(), dryrun=False, workdir=None,
-                 quiet=False, profile=None, jobs: int | None = None) -> list:
+                 quiet: bool | None = None, profile=None, jobs: int | None = None) -> list:
     """Run the workflow on a validated config.
 
     Parameters
@@ -335,6 +343,10 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
         jobs, resources and the executor plugin's settings (see :func:`load_profile`).
     jobs : int, optional
         Jobs at once (cluster jobs with a cluster executor); overrides the profile's ``jobs``.
+    quiet : bool, optional
+        Snakemake's own output limited to its warnings and errors (a failing job's error stays
+        visible; a dry run still lists the jobs). None: quiet when ``movieproc --quiet`` is
+        in force (:func:`movieproc.progress.quiet`).
 
     Returns
     -------
@@ -362,7 +374,8 @@ def run_workflow(config: dict, cores: int | None = None, targets=(), forcerun=()
         if not config_file.exists():
             write_effective_config(view, workdir, config_file)
         try:
-            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config)
+            request = _Run(cores, tuple(targets), frozenset(forcerun), dryrun, jobs, options, config,
+                           _quiet() if quiet is None else bool(quiet))
             updated = _snakemake(config_file, request, workdir, out)
         except BaseException as exc:  # a stage's failure, or Ctrl-C
             if not dryrun:
@@ -418,11 +431,31 @@ class _Run:
     jobs: int | None
     profile: argparse.Namespace | None
     config: dict
+    quiet: bool = False
+
+
+def _quiet() -> bool:
+    from .progress import quiet
+
+    return quiet()
+
+
+def _output_settings(run: _Run):
+    """Snakemake's output settings; quiet: its warnings and errors only (not for a dry run, whose
+    listing of jobs is the point)."""
+    from snakemake.settings.enums import Quietness
+    from snakemake.settings.types import OutputSettings
+
+    quiet = run.quiet and not run.dryrun
+    return OutputSettings(dryrun=run.dryrun, printshellcmds=bool(getattr(run.profile, "printshellcmds", False)),
+                          # RULES would also hide a failing job's error: job and progress lines go by level
+                          quiet={Quietness.PROGRESS, Quietness.HOST, Quietness.REASON} if quiet else None,
+                          log_level_override=logging.WARNING if quiet else None)
 
 
 def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
     from snakemake.api import SnakemakeApi
-    from snakemake.settings.types import ConfigSettings, DAGSettings, OutputSettings
+    from snakemake.settings.types import ConfigSettings, DAGSettings
 
     updated: list = []
     error_file = out / "last_error.txt"
@@ -430,8 +463,7 @@ def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
         error_file.unlink(missing_ok=True)
     executor, settings = _executor_settings(run)
     try:
-        with SnakemakeApi(OutputSettings(dryrun=run.dryrun, quiet=None,
-                                         printshellcmds=bool(getattr(run.profile, "printshellcmds", False)))) as api:
+        with SnakemakeApi(_output_settings(run)) as api:
             wf = api.workflow(
                 resource_settings=settings.pop("resources"),
                 config_settings=ConfigSettings(configfiles=[config_file], replace_workflow_config=True),

@@ -165,8 +165,9 @@ def test_the_same_through_movieproc_run(tmp_path, monkeypatch, capsys):
     assert "compute.scheduler" in err and address in err and "1 s" in err
 
 
-def _kill_a_busy_worker(address, done):
-    """Kill (SIGKILL) the process of a worker while it runs a task; return its pid."""
+def _kill_a_busy_worker(address, done, delay=0.2):
+    """Kill (SIGKILL) the process of a worker while it runs a task (``delay`` s after seeing it busy);
+    return its pid."""
     from distributed import Client
 
     with Client(address) as client:
@@ -174,7 +175,7 @@ def _kill_a_busy_worker(address, done):
         while not done.is_set():
             busy = [w for w, keys in client.processing().items() if keys]
             if busy:
-                time.sleep(0.2)  # inside the task (each takes 1 s)
+                time.sleep(delay)  # inside the task
                 os.kill(pids[busy[0]], signal.SIGKILL)
                 return pids[busy[0]]
             time.sleep(0.01)
@@ -218,6 +219,41 @@ def test_a_chunk_lost_beyond_the_retries_fails_clearly_and_a_rerun_completes(tmp
             _map_while_killing(address)
         ranges = parallel.chunk_ranges(40, 10)
         assert parallel.map_ranges(_slow_sum(), ranges, 2, address) == [sum(range(a, b)) for a, b in ranges]
+    finally:
+        proc.stdin.close()
+        proc.wait(timeout=30)
+
+
+@ON_THE_REFERENCE_WORKER
+def test_a_worker_killed_during_a_workflow_run_fails_it_clearly_and_a_rerun_gives_the_same_movie(
+        work, tmp_path, monkeypatch, capsys):
+    # dask's own setting: no second try for a task whose worker died, so the stage must fail
+    monkeypatch.setenv("DASK_DISTRIBUTED__SCHEDULER__ALLOWED_FAILURES", "0")
+    proc = subprocess.Popen([sys.executable, "-c", CLUSTER_SCRIPT], cwd=tmp_path, stdin=subprocess.PIPE,
+                            stdout=subprocess.PIPE, text=True, env=dict(os.environ))
+    out = work / "results/killed"
+    try:
+        address = proc.stdout.readline().strip()
+        config = C.load(overrides=demo_overrides("results/killed", f"compute.scheduler={address}"))
+        done, killed = threading.Event(), []
+        killer = threading.Thread(target=lambda: killed.append(_kill_a_busy_worker(address, done, delay=0.0)))
+        killer.start()
+        try:
+            with pytest.raises(WorkflowFailed):
+                run_workflow(config, workdir=work)
+        finally:
+            done.set()
+            killer.join()
+        assert killed and killed[0] is not None
+        log = capsys.readouterr()
+        assert "lost with the dask worker" in log.out + log.err and "run again" in log.out + log.err
+        # nothing of the failed stage was kept (no half-written store) and there is no movie yet
+        assert not (out / "movie.zarr").exists()
+        assert not [p.name for p in out.iterdir() if ".tmp-" in p.name]
+        # the cluster's nanny has started a new worker: the same command completes the run
+        run_workflow(config, workdir=work)
+        assert not (out / "STALE.txt").exists()
+        assert_same_movie(work / "results/threads/movie.zarr", out / "movie.zarr")
     finally:
         proc.stdin.close()
         proc.wait(timeout=30)

@@ -170,7 +170,7 @@ def test_bootstrap_is_the_ratio_estimator_and_chunking_changes_nothing():
     rng = np.random.default_rng(5)
     q = np.linspace(0.5, 4.0, 16)
     x = (1.0 + 0.3 * np.sin(q) + 0.01 * rng.standard_normal((n, q.size))).astype(np.float32)
-    weights = C.bootstrap_weights(np.random.default_rng(6), 5, n)
+    weights = C.ReplicateWeights(6, 5, n).array()
     assert weights.dtype == np.uint8 and weights.shape == (5, n)
     assert abs(weights.mean() - 1.0) < 0.02 and abs(weights.var() - 1.0) < 0.05  # Poisson(1): mean = var = 1
     got = bootstrap_run(x, on_idx, bins, refs, nb, weights, 3)
@@ -203,7 +203,7 @@ def test_bootstrap_covariance_matches_analytic_covariance():
     err = D.bin_errors(sums.variance(), sums.count, k, shared)  # (nb, nq)
     R = C.bin_correlation(C.bin_coefficient_overlap(bins, refs, nb))
     analytic = np.einsum("bq,cq->bc", err, err) * R / nq
-    reps = bootstrap_run(x, on_idx, bins, refs, nb, C.bootstrap_weights(np.random.default_rng(9), n_boot, n), 3)
+    reps = bootstrap_run(x, on_idx, bins, refs, nb, C.ReplicateWeights(9, n_boot, n), 3)
     assert np.all(np.isfinite(reps))
     dev = reps - reps.mean(axis=0)
     boot = np.einsum("rbq,rcq->bc", dev, dev) / ((n_boot - 1) * nq)
@@ -218,8 +218,25 @@ def test_bootstrap_chunk_refuses_missing_rows():
     weights = np.ones((2, 10), np.uint8)
     with pytest.raises(ValueError, match="rows"):
         C.bootstrap_chunk(weights, [1], [0], [[0, 2]], [0, 1], np.ones((2, 3), np.float32))
-    with pytest.raises(TypeError, match="rng"):
-        C.bootstrap_weights(0, 2, 10)
+    with pytest.raises(ValueError, match="seed"):
+        C.ReplicateWeights(-1, 2, 10)
+    with pytest.raises(ValueError, match="shots must be run indices"):
+        C.ReplicateWeights(0, 2, 10).take([3, 10])
+
+
+def test_replicate_weights_are_the_same_in_any_chunk_and_drawn_per_block():
+    # the same shot gets the same weights whichever chunk asks, across block boundaries;
+    # different seeds differ; Poisson(1) moments (mean = var = 1, P(0) = 1/e: any handbook)
+    n = 3 * C.WEIGHT_BLOCK_SHOTS + 123
+    w = C.ReplicateWeights(3, 4, n)
+    whole = w.array()
+    assert whole.shape == (4, n) and whole.dtype == np.uint8
+    idx = np.random.default_rng(0).permutation(n)[:5000]
+    np.testing.assert_array_equal(w.take(idx), whole[:, idx])
+    np.testing.assert_array_equal(C.ReplicateWeights(3, 4, n).take(idx[::-1]), whole[:, idx[::-1]])
+    assert not np.array_equal(C.ReplicateWeights(4, 4, n).array(), whole)
+    assert abs(whole.mean() - 1.0) < 0.01 and abs(whole.var() - 1.0) < 0.02
+    assert abs(np.mean(whole == 0) - np.exp(-1.0)) < 0.005
 
 
 # ------------------------------------------------------------------ whitening

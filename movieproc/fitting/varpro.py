@@ -63,6 +63,7 @@ from scipy import optimize, sparse
 from movieproc.errors import DataError, InputError, MovieprocError, ParameterError
 from movieproc.fitting.correlated import correlated_dof, inverse_psd, reduced_chi2, sandwich_covariance
 from movieproc.fitting.models import SpeciesModel, TrajectoryModel
+from movieproc.progress import iterate
 from movieproc.signals.covariance import check_correlation
 
 __all__ = ["LinearSolution", "solve_linear", "FitResult", "Problem", "Optimum", "Errors", "validate",
@@ -986,7 +987,7 @@ def bootstrap(fun, arrays, n, rng, *, ci=0.95):
     if any(a.shape[:1] != (m,) for a in arrays):
         raise InputError("argument 'arrays'", f"leading lengths {[a.shape[:1] for a in arrays]}", "equal lengths")
     out, failed = [], 0
-    for _ in range(int(n)):
+    for _ in iterate(range(int(n)), "bootstrap resamples", unit="fits"):
         idx = rng.integers(0, m, size=m)
         try:
             v = fun(*[a[idx] for a in arrays])
@@ -1063,7 +1064,7 @@ def refit_replicates(model, result, replicates, diff_err, delay):
         Replicates whose refit raised a MovieprocError.
     """
     samples = []
-    for rep in replicates:
+    for rep in iterate(replicates, "refit replicates", unit="fits"):
         try:
             samples.append(_refit(model, result, rep, diff_err, delay))
         except MovieprocError:

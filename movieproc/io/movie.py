@@ -86,3 +86,23 @@ def term_units_label(group) -> str:
     """The units of the solvent coefficients per term, e.g. ``"K (dT), 1 (normalization)"``."""
     return ", ".join(f"{u} ({t})" for t, u in zip(_strings(group, "term"), _strings(group, "term_units"),
                                                    strict=True))
+
+
+def readable_attrs(group) -> dict:
+    """The movie's attrs with its YAML text, line lists and tabular variables as Python structures.
+
+    Keys besides the stored scalars: ``config``, ``versions``, ``warnings`` (list),
+    ``input_files`` (list), ``input_checksums``, ``selection_counts``, ``fit_parameters``,
+    ``fit_species``, ``svd_structured`` (list of bool), the shapes older movies stored.
+    """
+    out = dict(group.attrs)
+    files = input_files(group)
+    derived = {"config": config(group), "versions": dict(store.yaml_value(group.attrs, "software_versions", {}) or {}),
+               "warnings": warnings(group), "input_files": list(files), "input_checksums": files,
+               "selection_counts": selection_counts(group), "fit_parameters": fit_parameters(group),
+               "fit_species": _strings(group, "species")}
+    if "svd_structured" in group:
+        derived["svd_structured"] = [bool(b) for b in group["svd_structured"][...]]
+    # an older movie keeps these as nested attrs: those stay where the new form is absent
+    out.update({k: v for k, v in derived.items() if v or k not in out})
+    return out

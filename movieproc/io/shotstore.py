@@ -58,13 +58,41 @@ def batches(ranges, workers):
     return [ranges[a:a + size] for a in range(0, len(ranges), size)]
 
 
-def file_checksum(path, algorithm: str = "sha256") -> str:
-    """Hex digest of a whole file, read in 16 MiB blocks."""
-    h = hashlib.new(algorithm)
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 24), b""):
-            h.update(block)
+#: Checksum of run files: XXH3 (128 bit), a non-cryptographic hash that runs at memory speed
+#: (~7 GB/s here, against ~0.65 GB/s for SHA-256, which cost as much CPU as integrating the frames).
+#: It detects changed or swapped run files; it is not a defence against deliberate tampering.
+CHECKSUM_ALGORITHM = "xxh3_128"
+#: Bytes read at once while hashing.
+HASH_BLOCK = 1 << 24
+
+
+def _hasher(algorithm: str):
+    if algorithm == "xxh3_128":
+        import xxhash
+
+        return xxhash.xxh3_128()
+    return hashlib.new(algorithm)
+
+
+def file_checksum(path, algorithm: str = CHECKSUM_ALGORITHM) -> str:
+    """``'ALGORITHM:hexdigest'`` of a whole file, read in 16 MiB blocks into one reused buffer.
+
+    ``algorithm`` is ``'xxh3_128'`` (default) or any name of :func:`hashlib.new` (e.g. ``'sha256'``).
+    """
+    h = _hasher(algorithm)
+    buf = bytearray(HASH_BLOCK)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as fh:
+        while n := fh.readinto(buf):
+            h.update(view[:n])
     return f"{algorithm}:{h.hexdigest()}"
+
+
+def checksum_algorithm(digest: str) -> str:
+    """The algorithm named by a recorded ``'ALGORITHM:hexdigest'`` (stores written before XXH3 say sha256);
+    :data:`CHECKSUM_ALGORITHM` for anything else."""
+    name, sep, _ = str(digest).partition(":")
+    return name if sep and name else CHECKSUM_ALGORITHM
 
 
 def create(path, q, table, chunk_shots, curve_arrays=None, attrs=None):

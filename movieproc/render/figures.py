@@ -5,6 +5,8 @@ Plain matplotlib on arrays; the render stage reads the movie and calls these.
 
 from __future__ import annotations
 
+from typing import Any
+
 import matplotlib
 
 matplotlib.use("Agg")
@@ -12,6 +14,10 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import TwoSlopeNorm  # noqa: E402
 from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
+from matplotlib.patches import Patch  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
+
+from . import style  # noqa: E402
 
 
 def _robust_limit(values, pct=99.0):
@@ -20,105 +26,255 @@ def _robust_limit(values, pct=99.0):
     return lim if lim > 0 else 1.0
 
 
-def _map(q, delay, values, lim, size):
-    """A (delay, q) map, one row per bin, diverging colours centred on zero within +-lim."""
-    fig, ax = plt.subplots(figsize=size, layout="constrained")
-    rows = np.arange(len(delay) + 1) - 0.5
-    qe = np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
-    mesh = ax.pcolormesh(qe, rows, values, cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -lim, lim), shading="flat")
-    step = max(1, len(delay) // 18)
-    ticks = np.arange(0, len(delay), step)
-    ax.set_yticks(ticks, [f"{delay[i]:.3g}" for i in ticks])
-    ax.set_ylim(rows[-1], rows[0])
+def bin_edges(delay, bounds=None):
+    """Lower and upper delay of each bin, ps, shape (nd, 2).
+
+    Parameters
+    ----------
+    delay : ndarray (nd,), ps
+        Bin delays (their means).
+    bounds : ndarray (nd + 1,) or (nd, 2), optional
+        Bin edges, or each bin's (lower, upper) bounds; without them each bin reaches
+        half-way to its neighbours.
+    """
+    delay = np.asarray(delay, float)
+    if bounds is not None:
+        b = np.asarray(bounds, float)
+        if b.ndim == 2 and b.shape == (delay.size, 2):
+            return b
+        if b.ndim == 1 and b.size == delay.size + 1:
+            return np.column_stack([b[:-1], b[1:]])
+        raise ValueError(f"bounds: shape {b.shape}, expected ({delay.size + 1},) or ({delay.size}, 2)")
+    if delay.size == 1:
+        return np.array([[delay[0] - 0.5, delay[0] + 0.5]])
+    mid = (delay[1:] + delay[:-1]) / 2
+    return np.column_stack([np.r_[delay[0] - (mid[0] - delay[0]), mid], np.r_[mid, delay[-1] + (delay[-1] - mid[-1])]])
+
+
+def _mesh_rows(bounds, values):
+    """Edges (n + 1,) and rows (n, nq) for pcolormesh; gaps between bins become empty (NaN) rows."""
+    edges, rows = [bounds[0, 0]], []
+    gap = np.full(values.shape[1], np.nan)
+    for (lo, hi), row in zip(bounds, values, strict=True):
+        if lo > edges[-1]:
+            rows.append(gap)
+            edges.append(lo)
+        rows.append(row)
+        edges.append(hi)
+    return np.asarray(edges), np.asarray(rows)
+
+
+def _q_edges(q):
+    return np.concatenate([[q[0] - (q[1] - q[0]) / 2], (q[1:] + q[:-1]) / 2, [q[-1] + (q[-1] - q[-2]) / 2]])
+
+
+def signal_label(q_weighted, units, wrap=False):
+    """Axis label of a (q-weighted) difference with its units (units on a second line with ``wrap``)."""
+    sep = "\n" if wrap else " "
+    if q_weighted:
+        return "q·ΔS" + sep + "(1/Å × " + (units or "data units") + ")"
+    return "ΔS" + sep + "(" + (units or "data units") + ")"
+
+
+def _map(q, delay, values, lim, bounds, shots=None, low_count=None, size=(style.PAGE, 5.2)):
+    """A (delay, q) map on a true delay axis, bins at their widths, with shots per bin beside it."""
+    fig = plt.figure(figsize=size, layout="constrained")
+    if shots is not None:
+        ax, sax = fig.subplots(1, 2, sharey=True, gridspec_kw={"width_ratios": [5, 1]})
+    else:
+        ax, sax = fig.subplots(1, 1), None
+    b = bin_edges(delay, bounds)
+    edges, rows = _mesh_rows(b, np.asarray(values, float))
+    ax.set_facecolor("0.88")  # no data (empty bins, gaps): grey, not white (white is zero)
+    mesh = ax.pcolormesh(_q_edges(q), edges, np.ma.masked_invalid(rows), cmap=style.DIVERGING,
+                         norm=TwoSlopeNorm(0.0, -lim, lim), shading="flat", rasterized=True)
+    style.delay_axis(ax, edges, which="y")
+    ax.set_ylim(edges[0], edges[-1])
     ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel("delay (ps), one row per bin")
+    if sax is not None:
+        _shots_strip(sax, b, np.asarray(shots, float), low_count)
     return fig, ax, mesh
 
 
-def difference_map(q, delay, diff, edges=None, q_weighted=True, low_count=None, title="", units=""):
-    """Difference map: q across, delay bins down, diverging colours centred on zero.
+def _shots_strip(ax, bounds, shots, low_count):
+    """Pump-on shots per bin as horizontal bars at the bins' true heights; too few shots in red."""
+    low = np.zeros(shots.size, bool) if low_count is None else np.asarray(low_count, bool)
+    colors = np.where(low, style.FIT, "0.5")
+    ax.barh(bounds[:, 0], np.maximum(shots, 0.5), height=bounds[:, 1] - bounds[:, 0], align="edge", color=colors,
+            lw=0)
+    ax.xaxis.set_major_locator(MaxNLocator(2, integer=True))
+    ax.set_xlabel("pump-on\nshots per bin")
+    ax.tick_params(labelleft=False)
+    ax.set_ylabel("")
+    if low.any():
+        ax.barh([], [], color=style.FIT, label=f"too few\n({int(low.sum())} bins)")
+        ax.legend(loc="lower right", fontsize=6.5, frameon=False)
 
-    Delays are shown one row per bin (labelled with the bin's delay), so that
-    fine bins near time zero and sparse late delays are equally visible.
+
+def difference_map(q, delay, diff, bounds=None, q_weighted=True, low_count=None, n_shots=None, title="", units=""):
+    """Difference map: q across, delay up on a true delay axis (linear near zero, logarithmic beyond).
+
+    Each bin is drawn at its real width (from its bounds); empty bins and gaps between
+    bins are grey. With ``n_shots`` a narrow panel beside the map gives the pump-on
+    shots per bin, bins with too few shots in red (instead of hatching the data).
 
     Parameters
     ----------
     q : ndarray (nq,), 1/Å
     delay : ndarray (nd,), ps
     diff : ndarray (nd, nq)
+        Difference, in ``units``.
+    bounds : ndarray (nd, 2) or (nd + 1,), ps, optional
+        Bin bounds (see :func:`bin_edges`).
     q_weighted : bool
-        Plot q * dS (1/Å times the data units).
+        Plot q·ΔS (1/Å times ``units``).
     low_count : ndarray (nd,) bool, optional
-        Rows to hatch as having too few shots.
+        Bins with too few shots.
+    n_shots : ndarray (nd,), optional
+        Pump-on shots per bin.
 
     Returns
     -------
     matplotlib.figure.Figure
     """
+    q = np.asarray(q, float)
     data = np.asarray(diff, float) * (q[None, :] if q_weighted else 1.0)
     lim = _robust_limit(data)
-    fig, ax, mesh = _map(q, delay, data, lim, (7.5, 6.0))
-    if low_count is not None:
-        for i in np.flatnonzero(low_count):
-            ax.axhspan(i - 0.5, i + 0.5, facecolor="none", edgecolor="0.4", hatch="///", lw=0)
-    cb = fig.colorbar(mesh, ax=ax)
-    cb.set_label(("q·ΔS" if q_weighted else "ΔS") + (f" ({units})" if units else ""))
+    fig, ax, mesh = _map(q, delay, data, lim, bounds, n_shots, low_count)
+    cb = fig.colorbar(mesh, ax=fig.axes, shrink=0.9, pad=0.01, extend="both")
+    cb.set_label(signal_label(q_weighted, units))
     ax.set_title(title or "pump-probe difference map")
+    fig.supxlabel(style.delay_scale_note(delay) + ";\nbins drawn at their widths; grey: no data; colours saturate "
+                  "beyond the 99th percentile of |values|", fontsize=7, color="0.3")
     return fig
 
 
+def _pick_rows(delay, rows_ok, requested):
+    """Bins nearest to each requested delay (among rows with data): list of (requested or None, row)."""
+    cand = np.flatnonzero(rows_ok)
+    if cand.size == 0:
+        return []
+    if requested is None:
+        picks = cand[np.unique(np.linspace(0, cand.size - 1, min(8, cand.size)).round().astype(int))]
+        return [(None, int(i)) for i in picks]
+    out, seen = [], set()
+    for d in requested:
+        i = int(cand[np.argmin(np.abs(delay[cand] - d))])
+        if i not in seen:
+            seen.add(i)
+            out.append((float(d), i))
+    return out
+
+
+def nice_step(value):
+    """The 1-2-5 number at or below ``value`` (for a scale bar)."""
+    if not np.isfinite(value) or value <= 0:
+        return 1.0
+    exp = np.floor(np.log10(value))
+    for m in (5.0, 2.0, 1.0):
+        if m * 10**exp <= value:
+            return float(m * 10**exp)
+    return float(10**exp)
+
+
+def _delay_text(requested, actual):
+    """Label of a curve: the requested delay, and the bin's mean delay (small text) where it differs visibly."""
+    if requested is None:
+        return f"{actual:.3g} ps", ""
+    if f"{actual:.2g}" != f"{requested:.2g}":
+        return f"{requested:g} ps", f"bin mean {actual:.3g} ps"
+    return f"{requested:g} ps", ""
+
+
 def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, model=None, title="", units=""):
-    """Difference curves at chosen delays, offset vertically, with error bands.
+    """Difference curves at chosen delays, offset vertically, with ±1 standard error bands and a scale bar.
 
     Parameters
     ----------
     q : ndarray (nq,), 1/Å
     delay : ndarray (nd,), ps
     diff, diff_err : ndarray (nd, nq)
+        Difference and its standard error, in ``units``.
     delays : sequence of float, optional
-        Delays to show (nearest bin each); default up to 8 bins spread over the run.
+        Requested delays (ps); the nearest bin with data is drawn, labelled with the
+        requested delay (and the bin's mean delay where it differs). Default: up to 8 bins
+        spread over the run.
     model : ndarray (nd, nq), optional
         A fitted model drawn over the data.
     """
-    if delays is None:
-        pick = np.unique(np.linspace(0, len(delay) - 1, min(8, len(delay))).round().astype(int))
-    else:
-        pick = np.unique([int(np.nanargmin(np.abs(delay - d))) for d in delays])
+    q, delay = np.asarray(q, float), np.asarray(delay, float)
+    ok = np.isfinite(diff).all(axis=1)
+    pick = _pick_rows(delay, ok, delays)
     w = q if q_weighted else np.ones_like(q)
-    data = diff * w[None, :]
-    err = diff_err * w[None, :]
-    step = 1.2 * _robust_limit(data[pick], 99.5) * 2
-    fig, ax = plt.subplots(figsize=(6.5, 1.0 + 0.9 * len(pick)), layout="constrained")
-    for j, i in enumerate(pick):
+    data = np.asarray(diff, float) * w[None, :]
+    err = np.asarray(diff_err, float) * w[None, :]
+    rows = [i for _, i in pick]
+    step = 2.4 * _robust_limit(data[rows], 99.5) if rows else 1.0
+    fig, ax = plt.subplots(figsize=(style.COLUMN * 1.6, 1.2 + 0.75 * max(3, len(pick))), layout="constrained")
+    for j, (req, i) in enumerate(pick):
         off = -j * step
-        ax.fill_between(q, data[i] - err[i] + off, data[i] + err[i] + off, color="C0", alpha=0.3, lw=0)
-        ax.plot(q, data[i] + off, color="C0", lw=1.0)
+        ax.axhline(off, color=style.GUIDE, lw=0.5)
+        ax.fill_between(q, data[i] - err[i] + off, data[i] + err[i] + off, color=style.DATA, alpha=style.BAND_ALPHA,
+                        lw=0)
+        ax.plot(q, data[i] + off, color=style.DATA, lw=0.9)
         if model is not None:
-            ax.plot(q, model[i] * w + off, color="C3", lw=1.0)
-        ax.axhline(off, color="0.7", lw=0.5)
-        ax.text(q[-1], off + 0.3 * step, f"{delay[i]:.3g} ps", ha="right", va="bottom", fontsize=8)
+            ax.plot(q, model[i] * w + off, color=style.FIT, lw=1.0)
+        main, mean = _delay_text(req, delay[i])
+        ax.text(1.01, off, main, transform=ax.get_yaxis_transform(), ha="left", va="bottom", fontsize=7.5)
+        if mean:
+            ax.text(1.01, off, mean, transform=ax.get_yaxis_transform(), ha="left", va="top", fontsize=6,
+                    color="0.35")
+    bar = nice_step(0.8 * step)
+    x = q[0] - 0.02 * (q[-1] - q[0])
+    ax.plot([x, x], [step * 0.35, step * 0.35 + bar], color="k", lw=2, solid_capstyle="butt", clip_on=False)
+    ax.text(x, step * 0.35 + bar / 2, f"{bar:.3g} ", ha="right", va="center", fontsize=7.5)
+    handles = [plt.Line2D([], [], color=style.DATA, label="data"),
+               Patch(color=style.DATA, alpha=style.BAND_ALPHA, label="±1 standard error")]
+    if model is not None:
+        handles.append(plt.Line2D([], [], color=style.FIT, label="fit"))
+    handles.append(plt.Line2D([], [], color="k", lw=2, label=f"scale bar: {bar:.3g} (same units)"))
+    ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=len(handles), fontsize=7,
+              frameon=False, borderaxespad=0.2)
     ax.set_yticks([])
+    ax.set_ylim(-(len(pick) - 0.4) * step, step * (0.45 + bar / step))
     ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel(("q·ΔS" if q_weighted else "ΔS") + (f" ({units})" if units else "") + ", offset")
-    ax.set_title(title or "difference curves (band: ±1 standard error)")
+    ax.set_ylabel(signal_label(q_weighted, units, wrap=True) + ", curves offset")
+    ax.set_title(title or "difference curves", pad=16)
     return fig
 
 
-def save(fig, path, dpi=130):
-    """Save a figure atomically (temporary file, then rename) and close it."""
+def save(fig, path, dpi=130, fmt=None):
+    """Save a figure atomically (temporary file, then rename) in the format of its suffix; does not close it.
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+    path : path
+        File to write; its suffix (``.png``, ``.pdf``, ``.svg``) gives the format unless ``fmt`` does.
+    dpi : int
+        Resolution of raster output (and of the rasterized maps inside vector output).
+    """
+    from pathlib import Path
+
     from ..io.store import atomic_path
 
+    fmt = fmt or Path(path).suffix.lstrip(".") or "png"
     with atomic_path(path) as tmp:
-        fig.savefig(tmp, dpi=dpi, format="png")
-    plt.close(fig)
+        fig.savefig(tmp, dpi=dpi, format=fmt)
+
+
+def png_bytes(fig, dpi=110):
+    """The figure as PNG bytes (for embedding in the report)."""
+    import io
+
+    buf = io.BytesIO()
+    fig.savefig(buf, dpi=dpi, format="png")
+    return buf.getvalue()
 
 
 def _delay_axis(ax, delay):
-    """Symmetric-log delay axis: linear within +-1 ps, logarithmic beyond."""
-    if np.nanmax(np.abs(delay)) > 5:
-        ax.set_xscale("symlog", linthresh=1.0, linscale=1.5)
-    ax.axvline(0, color="0.8", lw=0.8, zorder=0)
-    ax.set_xlabel("delay (ps)")
+    """Delay axis (see :func:`movieproc.render.style.delay_axis`)."""
+    style.delay_axis(ax, delay, which="x")
 
 
 def _population_panel(ax, curves, delay):
@@ -129,7 +285,7 @@ def _population_panel(ax, curves, delay):
     ax.plot([], [], "o", ms=3, mfc="none", color="0.4", label="model at the bins (bin width included)")
     ax.axhline(0, color="0.7", lw=0.5)
     ax.set_ylabel(curves.ylabel, fontsize=8)
-    ax.legend(fontsize=7, loc="center left")
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0, frameon=False)
 
 
 #: Per-delay coefficients that are nuisance terms of the fit, not solvent physics: not drawn.
@@ -143,8 +299,8 @@ def _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units):
         e = None if solvent_err is None else solvent_err[:, j]
         ax.errorbar(delay, solvent_coef[:, j], yerr=e, fmt="o", ms=3, lw=0.8, label=f"{name} (bars: ±1 s.e.)")
     ax.axhline(0, color="0.7", lw=0.5)
-    ax.set_ylabel(f"solvent term ({coef_units})" if coef_units else "solvent term")
-    ax.legend(fontsize=8)
+    ax.set_ylabel(f"solvent term ({coef_units})" if coef_units else "solvent term (units not recorded)")
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0, frameon=False)
 
 
 def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), chi2=None, params_text="",
@@ -171,7 +327,7 @@ def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), 
         solvent_coef = None  # only nuisance terms (or none): no solvent panel
     panels = [k for k, v in (("population", curves), ("solvent", solvent_coef), ("chi2", chi2)) if v is not None]
     rows = max(1, len(panels))
-    fig, axes = plt.subplots(rows, 1, figsize=(7, 2.4 * rows + 0.8), sharex=True, layout="constrained")
+    fig, axes = plt.subplots(rows, 1, figsize=(style.PAGE, 2.1 * rows + 0.8), sharex=True, layout="constrained")
     axes = np.atleast_1d(axes)
     if not panels:
         axes[0].axis("off")
@@ -183,14 +339,14 @@ def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), 
         if kind == "population":
             _population_panel(ax, curves, delay)
             if params_text:
-                ax.text(0.6, 0.05, params_text, transform=ax.transAxes, va="bottom", ha="center", fontsize=7,
-                        family="monospace", bbox=dict(facecolor="white", alpha=0.8, lw=0))
+                ax.text(1.02, 0.0, params_text, transform=ax.transAxes, va="bottom", ha="left", fontsize=7,
+                        family="monospace", bbox=dict(facecolor="0.96", edgecolor="0.8", lw=0.5))
         elif kind == "solvent":
             _solvent_panel(ax, delay, solvent_coef, solvent_err, terms, coef_units)
         else:
             ax.plot(delay, chi2, "o-", ms=3, lw=0.8, color="C3")
             ax.axhline(1, color="0.6", lw=0.8, ls="--")
-            ax.set_ylabel("reduced χ² per delay")
+            ax.set_ylabel("reduced χ² per delay\n(dimensionless)")
         _delay_axis(ax, delay)
     for ax in axes[:-1]:
         ax.set_xlabel("")
@@ -198,7 +354,16 @@ def kinetics(delay, curves=None, solvent_coef=None, solvent_err=None, terms=(), 
     return fig
 
 
-def structure_parameters(delay, values, lower, upper, units=None, title=""):
+def interval_caption(delta_chi2=None):
+    """What the structure figure's bars are (see :mod:`movieproc.fitting.structure`)."""
+    level = "Δχ²" if delta_chi2 is None else f"Δχ² ≤ {delta_chi2:g}"
+    return (f"bars: range of the parameter over the trajectory frames with {level} × the best frame's reduced χ² "
+            "(≈68 % interval for Δχ² = 1; asymmetric; no finer than the trajectory samples it); "
+            "no point: structure not determined")
+
+
+def structure_parameters(delay, values, lower, upper, units=None, title="", ground=None, delta_chi2=None,
+                         ground_note=""):
     """Geometric parameters of the best-fitting structure per delay, with their intervals.
 
     Parameters
@@ -207,27 +372,54 @@ def structure_parameters(delay, values, lower, upper, units=None, title=""):
     values, lower, upper : dict of name -> ndarray (nd,)
         Value at the best frame and its interval (Å or degrees).
     units : dict of name -> str, optional
+    ground : dict of name -> float, optional
+        The parameter in the ground-state structure, drawn as a dashed reference line.
+    delta_chi2 : float, optional
+        The fit's Δχ² threshold (``fit.delta_chi2``), said in the caption.
+    ground_note : str
+        Said in the caption when there is no ground-state reference (why).
     """
     n = max(1, len(values))
-    fig, axes = plt.subplots(n, 1, figsize=(7, 2.6 * n + 0.6), sharex=True, layout="constrained")
+    fig, axes = plt.subplots(n, 1, figsize=(style.PAGE * 0.85, 2.3 * n + 0.9), sharex=True, layout="constrained")
     axes = np.atleast_1d(axes)
     for ax, name in zip(axes, values, strict=False):
         v, lo, hi = values[name], lower[name], upper[name]
+        unit = (units or {}).get(name, "") or "units not recorded"
         ok = np.isfinite(v)
-        ax.errorbar(delay[ok], v[ok], yerr=[v[ok] - lo[ok], hi[ok] - v[ok]], fmt="o", ms=3, lw=0.8, capsize=2)
-        ax.set_ylabel(f"{name} ({(units or {}).get(name, '')})")
+        ax.errorbar(delay[ok], v[ok], yerr=[v[ok] - lo[ok], hi[ok] - v[ok]], fmt="o", ms=3, lw=0.8, capsize=2,
+                    color=style.DATA, label="best frame per delay")
+        g = (ground or {}).get(name)
+        if g is not None and np.isfinite(g):
+            ax.axhline(g, color=style.REFERENCE, ls="--", lw=0.9, label=f"ground state: {g:.3f} {unit}")
+        ax.set_ylabel(f"{name} ({unit})")
+        ax.legend(fontsize=7, loc="best")
         _delay_axis(ax, delay)
     for ax in axes[:-1]:
         ax.set_xlabel("")
-    axes[0].set_title(title or "structure per delay (bars: Δχ² interval)")
+    axes[0].set_title(title or "structure per delay")
+    import textwrap
+
+    caption = interval_caption(delta_chi2) + (f"; {ground_note}" if ground_note else "")
+    fig.supxlabel("\n".join(textwrap.wrap(caption, 120)), fontsize=7, color="0.3")
     return fig
 
 
-def residual_map(q, delay, residual, err, title=""):
-    """Normalized residuals (data - model) / error as a map; should look like noise."""
-    fig, ax, mesh = _map(q, delay, residual / err, 4.0, (7.5, 5.5))
-    fig.colorbar(mesh, ax=ax).set_label("(data − model) / error")
+def residual_map(q, delay, residual, err, title="", bounds=None):
+    """Normalized residuals (data - model) / error as a map on the true delay axis; should look like noise.
+
+    Parameters
+    ----------
+    q : ndarray (nq,), 1/Å
+    delay : ndarray (nd,), ps
+    residual, err : ndarray (nd, nq)
+        Data minus model and the data's standard error, same units.
+    bounds : ndarray (nd, 2) or (nd + 1,), ps, optional
+    """
+    fig, ax, mesh = _map(q, delay, residual / err, 4.0, bounds, size=(style.PAGE * 0.8, 4.6))
+    fig.colorbar(mesh, ax=ax, extend="both").set_label("(data − model) / standard error (dimensionless)")
     ax.set_title(title or "fit residuals")
+    fig.supxlabel(style.delay_scale_note(delay) + "; bins drawn at their widths; grey: no data", fontsize=7,
+                  color="0.3")
     return fig
 
 
@@ -336,9 +528,28 @@ def realspace(r, delay, values, delays=None, title="", units="", info=None):
     return fig
 
 
+#: Most frames an animation draws (delays beyond are thinned evenly): keeps the GIF small and quick.
+ANIMATION_MAX_FRAMES = 60
+#: Colours of the GIF palette (one palette for all frames, from the first).
+GIF_COLORS = 64
+
+
+def _geometry_text(label, i):
+    """'Ir-Ir = 2.680 Å (2.671–2.690)' for one delay, from (values, lower, upper, unit) per parameter."""
+    parts = []
+    for name, (v, lo, hi, unit) in (label or {}).items():
+        if np.isfinite(v[i]):
+            rng = f" ({lo[i]:.3f}–{hi[i]:.3f})" if np.isfinite(lo[i]) and np.isfinite(hi[i]) else ""
+            parts.append(f"{name} = {v[i]:.3f} {unit}{rng}")
+    return "\n".join(parts)
+
+
 def animation(path, q, delay, data, err, model, positions, element, label=None, q_weighted=True, units="",
-              fps=4, dpi=90, title=""):
+              fps=4, dpi=80, title=""):
     """Animated GIF of the movie: the curve (with its fit) and the best structure at each delay.
+
+    The static parts are drawn once; each frame restores them and redraws only the
+    changing artists (blitting), then the frames go to Pillow with one shared palette.
 
     Parameters
     ----------
@@ -347,74 +558,94 @@ def animation(path, q, delay, data, err, model, positions, element, label=None, 
     q : ndarray (nq,), 1/Å
     delay : ndarray (nd,), ps
     data, err : ndarray (nd, nq)
-        Difference curves and errors (rows with NaN are skipped).
+        Difference curves and their standard errors (rows with NaN are skipped).
     model : ndarray (nd, nq) or None
     positions : ndarray (nd, natom, 3) or None
         Best structure per delay, Å (NaN where none is reported).
     element : sequence of str (natom,) or None
-    label : dict of name -> ndarray (nd,), optional
-        Geometric parameters printed under the structure.
+    label : dict of name -> (values, lower, upper, unit), optional
+        Geometric parameters per delay (ndarray (nd,) each) and their interval, printed under the structure.
     """
-    from matplotlib.animation import FuncAnimation, PillowWriter
+    from PIL import Image
 
     from ..io.store import atomic_path
 
     rows = np.flatnonzero(np.isfinite(data).all(axis=1))
+    if rows.size > ANIMATION_MAX_FRAMES:
+        rows = rows[np.unique(np.linspace(0, rows.size - 1, ANIMATION_MAX_FRAMES).round().astype(int))]
     w = q if q_weighted else np.ones_like(q)
-    lim = 1.15 * np.nanmax(np.abs((data[rows] + err[rows]) * w))
+    lim = 1.15 * np.nanmax(np.abs((data[rows] + err[rows]) * w)) if rows.size else 1.0
     has_structure = positions is not None and element is not None
-    fig, axes = plt.subplots(1, 2 if has_structure else 1, figsize=(9 if has_structure else 6, 4),
-                             layout="constrained", gridspec_kw={"width_ratios": [3, 2]} if has_structure else None)
-    axes = np.atleast_1d(axes)
-    ax = axes[0]
-    band = [ax.fill_between(q, 0 * q, 0 * q, color="C0", alpha=0.3, lw=0)]
-    (line,) = ax.plot(q, 0 * q, color="C0", lw=1, label="data")
-    (fit,) = ax.plot(q, 0 * q, color="C3", lw=1, label="fit") if model is not None else (None,)
-    ax.axhline(0, color="0.7", lw=0.5)
-    ax.set_ylim(-lim, lim)
-    ax.set_xlabel("q (1/Å)")
-    ax.set_ylabel(("q·ΔS" if q_weighted else "ΔS") + (f" ({units})" if units else ""))
-    ax.legend(loc="upper right", fontsize=8)
-    text = ax.text(0.02, 0.95, "", transform=ax.transAxes, va="top")
-    if has_structure:
-        sax = axes[1]
-        kinds = list(dict.fromkeys(element))
-        colors = {e: f"C{i}" for i, e in enumerate(kinds)}
-        finite = positions[np.isfinite(positions).all(axis=(1, 2))]
-        span = np.nanmax(np.abs(finite[..., [0, 2]])) * 1.15 if finite.size else 5.0
-        sax.set_xlim(-span, span)
-        sax.set_ylim(-span, span)
-        sax.set_aspect("equal")
-        sax.set_xlabel("x (Å)")
-        sax.set_ylabel("z (Å)")
-        dots = sax.scatter(np.zeros(len(element)), np.zeros(len(element)),
-                           c=[colors[e] for e in element], s=[120 if e == kinds[0] else 50 for e in element])
-        for e in kinds:
-            sax.scatter([], [], c=colors[e], label=e)
-        sax.legend(fontsize=8, loc="upper right")
-        stext = sax.text(0.02, 0.02, "", transform=sax.transAxes, fontsize=9)
-
-    def draw(k):
-        i = rows[k]
-        band[0].remove()
-        band[0] = ax.fill_between(q, (data[i] - err[i]) * w, (data[i] + err[i]) * w, color="C0", alpha=0.3, lw=0)
-        line.set_ydata(data[i] * w)
-        if fit is not None:
-            fit.set_ydata(model[i] * w)
-        text.set_text(f"{delay[i]:.3g} ps")
+    with style.figure_style():
+        fig, axes = plt.subplots(1, 2 if has_structure else 1, figsize=(7.5 if has_structure else 5, 3.3),
+                                 layout="constrained",
+                                 gridspec_kw={"width_ratios": [3, 2]} if has_structure else None)
+        axes = np.atleast_1d(axes)
+        ax = axes[0]
+        band = ax.fill_between(q, -w, w, color=style.DATA, alpha=style.BAND_ALPHA, lw=0, label="±1 standard error",
+                               animated=True)
+        (line,) = ax.plot(q, 0 * q, color=style.DATA, lw=1, label="data", animated=True)
+        fit = ax.plot(q, 0 * q, color=style.FIT, lw=1, label="fit", animated=True)[0] if model is not None else None
+        ax.axhline(0, color=style.GUIDE, lw=0.5)
+        ax.set_ylim(-lim, lim)
+        ax.set_xlabel("q (1/Å)")
+        ax.set_ylabel(signal_label(q_weighted, units, wrap=True), fontsize=8)
+        ax.legend(loc="upper right", fontsize=7)
+        text = ax.text(0.02, 0.95, "", transform=ax.transAxes, va="top", animated=True)
+        moving = [band, line, text] + ([fit] if fit is not None else [])
         if has_structure:
-            p = positions[i]
-            ok = np.isfinite(p).all()
-            dots.set_offsets(p[:, [0, 2]] if ok else np.full((len(element), 2), np.nan))
-            parts = [f"{n} = {v[i]:.3f}" for n, v in (label or {}).items() if np.isfinite(v[i])]
-            stext.set_text(", ".join(parts) if ok else "no structure determined")
-        return ()
-
-    fig.suptitle(title or "movie")
-    anim = FuncAnimation(fig, draw, frames=len(rows), blit=False)
+            moving += _structure_axes(axes[1], positions, element)
+        fig.suptitle(title or "movie")
+        fig.canvas.draw()
+        fig.set_layout_engine("none")  # the layout is fixed now: no re-layout per frame
+        canvas: Any = fig.canvas  # Agg: copy_from_bbox, restore_region, buffer_rgba
+        background = canvas.copy_from_bbox(fig.bbox)
+        frames = []
+        for i in rows:
+            canvas.restore_region(background)
+            band.set_verts([np.column_stack([np.r_[q, q[::-1]],
+                                             np.r_[(data[i] - err[i]) * w, ((data[i] + err[i]) * w)[::-1]]])])
+            line.set_ydata(data[i] * w)
+            if fit is not None:
+                fit.set_ydata(model[i] * w)
+            text.set_text(f"delay {delay[i]:.3g} ps")
+            if has_structure:
+                _structure_frame(moving[-2], moving[-1], positions[i], len(element), _geometry_text(label, i))
+            for artist in moving:
+                fig.draw_artist(artist)
+            rgb = np.asarray(canvas.buffer_rgba())[..., :3]
+            frames.append(Image.fromarray(rgb.copy()))
+        plt.close(fig)
+    if not frames:
+        raise ValueError("data: no delay with finite values to animate")
+    first = frames[0].quantize(colors=GIF_COLORS, method=Image.Quantize.MEDIANCUT)
+    rest = [f.quantize(palette=first, dither=Image.Dither.NONE) for f in frames[1:]]
     with atomic_path(path) as tmp:
-        anim.save(str(tmp) + ".gif", writer=PillowWriter(fps=fps), dpi=dpi)
-        import os
+        first.save(tmp, format="GIF", save_all=True, append_images=rest, duration=int(1000 / fps), loop=0)
 
-        os.replace(str(tmp) + ".gif", tmp)
-    plt.close(fig)
+
+def _structure_axes(sax, positions, element):
+    """Static parts of the structure panel; returns its moving artists (atoms, text)."""
+    kinds = list(dict.fromkeys(element))
+    colors = {e: f"C{i}" for i, e in enumerate(kinds)}
+    finite = positions[np.isfinite(positions).all(axis=(1, 2))]
+    span = np.nanmax(np.abs(finite[..., [0, 2]])) * 1.15 if finite.size else 5.0
+    sax.set_xlim(-span, span)
+    sax.set_ylim(-span, span)
+    sax.set_aspect("equal")
+    sax.set_xlabel("x (Å)")
+    sax.set_ylabel("z (Å)")
+    dots = sax.scatter(np.zeros(len(element)), np.zeros(len(element)), c=[colors[e] for e in element],
+                       s=[90 if e == kinds[0] else 35 for e in element], animated=True)
+    for e in kinds:
+        sax.scatter([], [], c=colors[e], label=e)
+    sax.legend(fontsize=7, loc="upper right")
+    stext = sax.text(0.02, 0.98, "", transform=sax.transAxes, fontsize=7.5, va="top", animated=True)
+    return [dots, stext]
+
+
+def _structure_frame(dots, stext, p, natom, geometry_text):
+    ok = np.isfinite(p).all()
+    dots.set_offsets(p[:, [0, 2]] if ok else np.full((natom, 2), np.nan))
+    stext.set_text((geometry_text or "best frame") + "\n(range: Δχ² interval)" if ok else
+                   "no structure determined")

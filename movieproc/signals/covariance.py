@@ -26,6 +26,8 @@ products) instead of re-running the reduction once per replicate.
 
 from __future__ import annotations
 
+import functools
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -34,7 +36,7 @@ from scipy import linalg, sparse
 __all__ = ["reference_use_counts", "reference_gram", "bin_coefficient_overlap", "overlap_from_gram",
            "bin_correlation", "check_correlation",
            "cholesky_correlation", "whiten", "decorrelate",
-           "bootstrap_weights", "BootstrapChunk", "BootstrapSums", "bootstrap_chunk", "bootstrap_replicates",
+           "ReplicateWeights", "BootstrapChunk", "BootstrapSums", "bootstrap_chunk", "bootstrap_replicates",
            "replicate_correlation"]
 
 #: Smallest accepted ratio of the smallest to the largest squared Cholesky pivot of R:
@@ -44,8 +46,14 @@ MIN_PIVOT_RATIO = 1e-10
 #: Tolerance on R's symmetry and unit diagonal (R is computed in float64 from counts).
 CORRELATION_TOLERANCE = 1e-8
 
-#: Rows of the (replicate, shot) Poisson weights drawn at once (bounds the int64 temporary).
-WEIGHT_ROWS_PER_DRAW = 16
+#: Shots per block of replicate weights: each block is drawn from its own generator, seeded with
+#: (seed, block), so any shot's weights can be drawn again in any chunk or worker without holding
+#: the whole (replicate, shot) table: 200 replicates of a 10-million-shot run would be 2 GB.
+WEIGHT_BLOCK_SHOTS = 1 << 14
+
+#: Weight blocks a process keeps once drawn (chunks are read in run order, so a chunk's shots and
+#: references fall into a few neighbouring blocks): at most this many times n_boot * 16 kB.
+WEIGHT_BLOCKS_KEPT = 16
 
 #: Pump-on shots whose reference uses are counted at once by :func:`reference_gram`
 #: (bounds its temporaries to some tens of MB whatever the run length).
@@ -400,33 +408,66 @@ def whiten(residual, error, R):
 
 # ----------------------------------------------------------------------------- bootstrap
 
-def bootstrap_weights(rng, n_boot, n_shots):
-    """Poisson(1) weight of every shot in every replicate, drawn once for the whole run.
+@functools.lru_cache(maxsize=WEIGHT_BLOCKS_KEPT)
+def _weight_block(seed: int, n_boot: int, block: int, size: int) -> np.ndarray:
+    rng = np.random.default_rng([seed, block])
+    # Poisson(1) above 255 has probability ~1e-507: the clip never acts.
+    out = np.minimum(rng.poisson(1.0, (n_boot, size)), 255).astype(np.uint8)
+    out.setflags(write=False)
+    return out
+
+
+@dataclass(frozen=True)
+class ReplicateWeights:
+    """Poisson(1) weight of every shot in every replicate, drawn block by block on demand.
+
+    The weights of shots ``[i * B, (i + 1) * B)`` (B = :data:`WEIGHT_BLOCK_SHOTS`) come from
+    ``numpy.random.default_rng([seed, i])``: the same shot has the same weights in every chunk,
+    thread and worker process (a reference shared by pump-on shots of two chunks keeps one weight),
+    and memory is a few blocks, not the run.
 
     Parameters
     ----------
-    rng : numpy.random.Generator
-        Seeded generator.
+    seed : int
+        Seed (>= 0).
     n_boot : int
-        Number of replicates.
+        Number of replicates (>= 0).
     n_shots : int
-        Shots in the run (the weights are indexed by run index, so a reference
-        shared by pump-on shots of different chunks keeps one weight).
-
-    Returns
-    -------
-    ndarray (n_boot, n_shots) uint8
+        Shots in the run; weights are indexed by run index.
     """
-    if not isinstance(rng, np.random.Generator):
-        raise TypeError(f"rng must be a seeded numpy.random.Generator, got {type(rng).__name__}")
-    if int(n_boot) < 0:
-        raise ValueError(f"n_boot must be a number of replicates >= 0, got {n_boot}")
-    out = np.empty((int(n_boot), int(n_shots)), np.uint8)
-    for a in range(0, out.shape[0], WEIGHT_ROWS_PER_DRAW):
-        rows = out[a:a + WEIGHT_ROWS_PER_DRAW]
-        # Poisson(1) above 255 has probability ~1e-507: the clip never acts.
-        rows[:] = np.minimum(rng.poisson(1.0, rows.shape), 255)
-    return out
+
+    seed: int
+    n_boot: int
+    n_shots: int
+
+    def __post_init__(self):
+        for name in ("seed", "n_boot", "n_shots"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
+                raise ValueError(f"{name} must be an integer >= 0, got {value!r}")
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(n_boot, n_shots), as the whole table would have."""
+        return int(self.n_boot), int(self.n_shots)
+
+    def take(self, shots) -> np.ndarray:
+        """Weights of the given run indices, ndarray (n_boot, len(shots)) uint8."""
+        shots = np.asarray(shots, np.int64).ravel()
+        if shots.size and (shots.min() < 0 or shots.max() >= self.n_shots):
+            raise ValueError(f"shots must be run indices in [0, {self.n_shots}), got {shots.min()}..{shots.max()}")
+        out = np.empty((self.n_boot, shots.size), np.uint8)
+        block = shots // WEIGHT_BLOCK_SHOTS
+        for b in np.unique(block):
+            sel = block == b
+            start = int(b) * WEIGHT_BLOCK_SHOTS
+            size = min(WEIGHT_BLOCK_SHOTS, self.n_shots - start)
+            out[:, sel] = _weight_block(int(self.seed), int(self.n_boot), int(b), size)[:, shots[sel] - start]
+        return out
+
+    def array(self) -> np.ndarray:
+        """All weights, ndarray (n_boot, n_shots) uint8 (for tests and small runs)."""
+        return self.take(np.arange(self.n_shots))
 
 
 @dataclass
@@ -503,13 +544,14 @@ def _weighted_sums(W, X, out, out_weight):
 
 
 def _check_chunk(weights, on_shot, on_bin, refs, rows, curves):
-    weights = np.asarray(weights)
+    if not isinstance(weights, ReplicateWeights):
+        weights = np.asarray(weights)
     on_shot = np.asarray(on_shot, np.int64)
     on_bin = np.asarray(on_bin, np.int64)
     refs = np.asarray(refs, np.int64)
     rows = np.asarray(rows, np.int64)
     curves = np.asarray(curves)
-    if weights.ndim != 2:
+    if not isinstance(weights, ReplicateWeights) and weights.ndim != 2:
         raise ValueError(f"weights must be (n_boot, n_shots), got shape {weights.shape}")
     if on_bin.shape != on_shot.shape or on_shot.ndim != 1:
         raise ValueError(f"on_shot and on_bin must be 1-D of one length, got {on_shot.shape} and {on_bin.shape}")
@@ -541,8 +583,8 @@ def bootstrap_chunk(weights, on_shot, on_bin, refs, rows, curves) -> BootstrapCh
 
     Parameters
     ----------
-    weights : ndarray (n_boot, n_shots) uint8
-        From :func:`bootstrap_weights`, indexed by run index.
+    weights : ReplicateWeights or ndarray (n_boot, n_shots) uint8
+        Poisson weights of every shot, indexed by run index.
     on_shot : array_like (n,) int
         Run indices of the chunk's pump-on shots.
     on_bin : array_like (n,) int
@@ -560,6 +602,7 @@ def bootstrap_chunk(weights, on_shot, on_bin, refs, rows, curves) -> BootstrapCh
     BootstrapChunk
     """
     weights, on_shot, on_bin, refs, rows, curves = _check_chunk(weights, on_shot, on_bin, refs, rows, curves)
+    take = weights.take if isinstance(weights, ReplicateWeights) else (lambda idx: weights[:, idx])
     n_boot, nq = weights.shape[0], curves.shape[1]
     ok = on_bin >= 0
     order = np.argsort(on_bin[ok], kind="stable")
@@ -570,9 +613,9 @@ def bootstrap_chunk(weights, on_shot, on_bin, refs, rows, curves) -> BootstrapCh
     part = BootstrapChunk(bins.astype(np.int64), np.empty((bins.size, n_boot, nq)), np.empty((bins.size, n_boot)),
                           np.empty((bins.size, n_boot, nq)), np.empty((bins.size, n_boot)))
     for t, (a, b) in enumerate(zip(starts, stops, strict=True)):
-        _weighted_sums(weights[:, shot_s[a:b]], curves[pos_on[a:b]], part.on_sum[t], part.on_weight[t])
+        _weighted_sums(take(shot_s[a:b]), curves[pos_on[a:b]], part.on_sum[t], part.on_weight[t])
         ref, uses = np.unique(refs_s[a:b], return_counts=True)
-        w_ref = weights[:, ref].astype(np.float32) * uses.astype(np.float32)
+        w_ref = take(ref).astype(np.float32) * uses.astype(np.float32)
         _weighted_sums(w_ref, curves[_positions(rows, ref)], part.off_sum[t], part.off_weight[t])
     return part
 

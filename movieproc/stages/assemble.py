@@ -17,6 +17,7 @@ import numpy as np
 
 from ..io import store
 from ..safety import SAFETY
+from ..warning_groups import summary_lines
 from .common import now, versions
 
 log = logging.getLogger("movieproc.assemble")
@@ -100,6 +101,6 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         for g in extras:
             _copy_group(g, movie)
         _provenance(movie, shots, sel)
-    log.info("movie written to %s (%d warnings)", out, len(warnings))
-    for w in warnings:
-        log.info("  %s", w)
+    log.info("movie written to %s", out)
+    for line in summary_lines(warnings):
+        log.info("%s", line)

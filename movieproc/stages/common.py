@@ -11,13 +11,16 @@ log = logging.getLogger("movieproc")
 
 
 def setup_logging(level=logging.INFO):
-    """Log to stderr once, in a plain one-line format."""
+    """Log to stderr once, in a plain one-line format; in quiet mode (``movieproc --quiet``,
+    :func:`movieproc.progress.quiet`) warnings and errors only, whatever ``level`` asks."""
+    from ..progress import quiet
+
     root = logging.getLogger("movieproc")
     if not root.handlers:
         handler = logging.StreamHandler()
         handler.setFormatter(logging.Formatter("%(asctime)s movieproc %(levelname)s: %(message)s", "%H:%M:%S"))
         root.addHandler(handler)
-    root.setLevel(level)
+    root.setLevel(max(level, logging.WARNING) if quiet() else level)
     return root
 
 

@@ -21,6 +21,7 @@ import numpy as np
 
 from ..errors import DataError
 from ..io import shotstore, store
+from .. import progress
 from ..parallel import chunk_ranges, map_ranges
 from ..signals import covariance
 from ..signals.differences import bin_errors, difference_sums, nearest_references, shared_factor_from_gram
@@ -59,13 +60,13 @@ def _chunk_sums(start, stop, shots, on_idx, refs, on_bin, nbins, differences, we
 
 def _reduce(work, n_on, compute, boot):
     """Map ``work`` over chunks of the pump-on shots, a batch at a time; bootstrap sums added into ``boot``."""
-    total = None
-    for batch in shotstore.batches(chunk_ranges(n_on, compute["chunk_shots"]), compute["workers"]):
-        for sums, part in map_ranges(work, batch, compute["workers"], compute["scheduler"], compute["progress"],
-                                     "difference"):
-            total = sums if total is None else total + sums
-            if part is not None:
-                boot.add(part)
+    total, ranges = None, chunk_ranges(n_on, compute["chunk_shots"])
+    with progress.bar(len(ranges), "difference", "chunks", compute["progress"]) as bar:  # one bar, all batches
+        for batch in shotstore.batches(ranges, compute["workers"]):
+            for sums, part in map_ranges(work, batch, compute["workers"], compute["scheduler"], bar, "difference"):
+                total = sums if total is None else total + sums
+                if part is not None:
+                    boot.add(part)
     return total
 
 
@@ -111,8 +112,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         del keep, index
         for name in ("pulse_id", "pump_on"):  # the largest fields, not needed beyond the references
             shots.table.drop(name)
-        weights = covariance.bootstrap_weights(np.random.default_rng(differences["seed"]), n_boot,
-                                               shots.n_shots) if n_boot else None
+        weights = covariance.ReplicateWeights(differences["seed"], n_boot, shots.n_shots) if n_boot else None
         boot = covariance.BootstrapSums.zeros(n_boot, nbins, shots.q.size) if n_boot else None
         work = partial(_chunk_sums, shots=shots, on_idx=on_idx, refs=refs, on_bin=on_bin, nbins=nbins,
                        differences=differences, weights=weights)

@@ -343,9 +343,10 @@ def _integrate_range(start, stop, info, setup, paths, block):
     """Integrate shots [start, stop) block by block into the store's arrays; the counts to report."""
     targets = {name: zarr.open_array(path, mode="r+") for name, path in paths.items()}
     excluded = lost_sector = lost_var = 0
+    buffer = np.empty((min(block, stop - start), *info.frame_shape), dtype=info.data_dtype)
     for a in range(start, stop, block):
         b = min(a + block, stop)
-        res = curves.shot_curves(runfile.read_frames(info, a, b), setup.layout, setup.scale[a:b])
+        res = curves.shot_curves(runfile.read_frames(info, a, b, out=buffer), setup.layout, setup.scale[a:b])
         for name, values in res.arrays.items():
             targets[name][a:b] = values.astype(np.float32)
         excluded, lost_sector, lost_var = (excluded + res.excluded, lost_sector + res.lost_sector,

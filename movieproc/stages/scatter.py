@@ -37,6 +37,7 @@ from ..io.structures import read_ensemble, read_structure
 from ..scattering import model
 from ..scattering.formfactors import WATER_ELECTRON_DENSITY
 from .common import Warnings, now, versions
+from ..progress import DaskProgress
 from .keys import config_keys
 
 log = logging.getLogger("movieproc.scatter")
@@ -133,7 +134,8 @@ def _trajectory(q, ground, elements, ground_pos, trajectory, options, warnings):
     if ens.elements != tuple(elements):
         raise InputError(trajectory[0], f"atoms {''.join(ens.elements)}",
                          f"the atoms of the ground state {ground} ({''.join(elements)}) in the same order")
-    traj_dS = model.ensemble_difference_curves(q, ens.positions, elements, ground_pos, **options)
+    with DaskProgress("scatter", "frame blocks"):  # the trajectory's frames, computed by dask
+        traj_dS = model.ensemble_difference_curves(q, ens.positions, elements, ground_pos, **options)
     if ens.times is None:
         frame_time = np.full(traj_dS.shape[0], np.nan)
         warnings.add(f"no frame times in {trajectory[0]}: frame_time left as NaN")

@@ -10,6 +10,7 @@ import numpy as np
 
 from ..errors import DataError
 from ..io import shotstore, store
+from .. import progress
 from ..parallel import chunk_ranges, map_ranges
 from ..shots import selection
 from ..signals.normalize import normalize
@@ -56,10 +57,11 @@ def _flags(shots, sel, normalization, compute, warnings):
     score = np.full(n, np.nan, np.float32)  # a robust z score: 7 digits are plenty
     if outliers["enabled"]:
         work = partial(_block_scores, shots=shots, flags=flags, normalization=normalization)
-        for batch in shotstore.batches(chunk_ranges(n, outliers["window"]), compute["workers"]):
-            for start, ok, s in map_ranges(work, batch, compute["workers"], compute["scheduler"],
-                                           compute["progress"], "select"):
-                score[start + ok] = s
+        ranges = chunk_ranges(n, outliers["window"])
+        with progress.bar(len(ranges), "select", "chunks", compute["progress"]) as bar:  # one bar, all batches
+            for batch in shotstore.batches(ranges, compute["workers"]):
+                for start, ok, s in map_ranges(work, batch, compute["workers"], compute["scheduler"], bar, "select"):
+                    score[start + ok] = s
         flags[selection.robust_outliers(score, outliers["threshold"])] |= selection.REASONS["outlier"]
     return flags, score
 

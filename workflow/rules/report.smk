@@ -21,9 +21,13 @@ rule assemble:
         stage("assemble", input, output, dict(params.config, provenance=config.get("provenance")))
 
 
+# The render rule also reads the per-shot timing (delays, shots) for the report's timing
+# diagnostics; its params stay the render section and the run name.
 rule render:
     input:
         movie=zstore("movie"),
+        delays=zstore("delays"),
+        shots=zstore("shots"),
     output:
         f"{OUT}/figures/.done",
     params:
