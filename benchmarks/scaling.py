@@ -287,13 +287,16 @@ def _binning():
 
 
 def _integrate_range(a, b, path):
-    """Integrate frames [a, b) of the run file in blocks of FRAME_CHUNK (what a worker does)."""
+    """Integrate frames [a, b) of the run file in blocks of FRAME_CHUNK, read as the integrate stage
+    reads them (:func:`movieproc.io.runfile.read_frames`): what a worker does."""
     from movieproc.detector import integration
+    from movieproc.io import runfile
 
     binning = _binning()
-    with h5py.File(path, "r") as h5:
-        for c in range(a, b, FRAME_CHUNK):
-            integration.bin_sums(h5["frames"][c:min(c + FRAME_CHUNK, b)], binning)
+    info = runfile.inspect_run([Path(path)])
+    buffer = np.empty((FRAME_CHUNK, *FRAME_SHAPE), np.uint16)
+    for c in range(a, b, FRAME_CHUNK):
+        integration.bin_sums(runfile.read_frames(info, c, min(c + FRAME_CHUNK, b), out=buffer), binning)
 
 
 def workers_scaling(path, n_frames):

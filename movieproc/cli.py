@@ -9,6 +9,7 @@
     movieproc calibrate detector geometry from a calibrant powder image
     movieproc export    a movie as a netCDF-4 file
     movieproc render    re-draw the figures and report.html of an existing movie (runs nothing)
+    movieproc init      write a starter config to fill in
 
 Every config value can be overridden with ``--set dotted.key=value`` (several after
 one --set, and --set may be repeated; values are parsed as YAML), e.g.
@@ -31,14 +32,15 @@ from pathlib import Path
 from . import __version__
 from . import config as mpconfig
 from . import progress
+from . import resources
 from .safety import SAFETY
 from .errors import MovieprocError
 from .stages.common import setup_logging
 
 #: Generic settings of ``movieproc process`` (and of check / sign-check with run files).
-PROCESS_CONFIG = mpconfig.ROOT / "config" / "process.yaml"
+PROCESS_CONFIG = resources.process_config()
 #: How --help names the default config of the other commands.
-DEFAULT_CONFIG_TEXT = f"{mpconfig.DEFAULT_CONFIG}, the demo"
+DEFAULT_CONFIG_TEXT = f"{resources.default_config()}, the demo"
 
 
 #: Suffixes of files (run files, configs) that a --set list may swallow when they follow its pairs.
@@ -277,7 +279,7 @@ def build_parser():
 
     p = sub.add_parser("synth", help="write a synthetic run of the demo scenario with its ground truth")
     p.add_argument("out", help="output folder")
-    p.add_argument("--scenario", default=str(mpconfig.ROOT / "demo_data" / "scenario.yaml"),
+    p.add_argument("--scenario", default=str(resources.demo_file("scenario.yaml")),
                    help="scenario YAML: structures, kinetics, timing and noise of the run (default: %(default)s)")
     p.add_argument("--shots", type=int, default=24000, help="shots in all files together (default %(default)s)")
     p.add_argument("--seed", type=int, default=2026, help="seed of the random draws (default %(default)s)")
@@ -296,11 +298,12 @@ def build_parser():
     add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command, export_command, render_command
+    from . import calibrate_command, export_command, init_command, render_command
 
     calibrate_command.add_parser(sub)
     export_command.add_parser(sub)
     render_command.add_parser(sub)
+    init_command.add_parser(sub)
     return parser
 
 

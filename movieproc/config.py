@@ -2,10 +2,10 @@
 
 The config is one YAML file checked against ``config/schemas/config.schema.yaml``
 (JSON Schema draft 2020-12, with the detector section in
-``detector.schema.yaml``). Validation fills in defaults, so stages can rely on
-every key being present. Command-line overrides are ``dotted.key=value`` strings
-whose values are parsed as YAML; they are validated like the file and recorded
-under ``provenance.overrides``.
+``detector.schema.yaml``; the shipped files are found by :mod:`movieproc.resources`).
+Validation fills in defaults, so stages can rely on every key being present.
+Command-line overrides are ``dotted.key=value`` strings whose values are parsed
+as YAML; they are validated like the file and recorded under ``provenance.overrides``.
 """
 
 from __future__ import annotations
@@ -18,11 +18,17 @@ from pathlib import Path
 import jsonschema
 import yaml
 
+from . import resources
 from .errors import ConfigError
 
-ROOT = Path(__file__).resolve().parents[1]
-SCHEMA_DIR = ROOT / "config" / "schemas"
-DEFAULT_CONFIG = ROOT / "config" / "config.yaml"
+#: The folder holding ``workflow/``, ``config/`` and ``demo_data/`` (the source checkout, or the installed
+#: package's data; :func:`movieproc.resources.data_root`). Code asks :mod:`movieproc.resources` for files.
+ROOT = resources.data_root()
+#: The schema files' folder and the demo config (as :mod:`movieproc.resources` gives them).
+SCHEMA_DIR = resources.schema("config").parent
+DEFAULT_CONFIG = resources.default_config()
+#: Start of a value a user must replace (``movieproc init`` writes run.files so); such a config is refused.
+PLACEHOLDER = "FILL-IN"
 
 
 class _Loader(yaml.SafeLoader):
@@ -47,14 +53,9 @@ def read_yaml(text: str):
 
 def load_schema() -> dict:
     """The full config schema, detector section merged in."""
-    schema = yaml.safe_load((SCHEMA_DIR / "config.schema.yaml").read_text())
-    extra = SCHEMA_DIR / "detector.schema.yaml"
-    if extra.exists():
-        schema["properties"]["detector"] = yaml.safe_load(extra.read_text())
-    for name in ("analysis.schema.yaml",):
-        part = SCHEMA_DIR / name
-        if part.exists():
-            schema["properties"].update(yaml.safe_load(part.read_text())["properties"])
+    schema = yaml.safe_load(resources.schema("config").read_text(encoding="utf-8"))
+    schema["properties"]["detector"] = yaml.safe_load(resources.schema("detector").read_text(encoding="utf-8"))
+    schema["properties"].update(yaml.safe_load(resources.schema("analysis").read_text(encoding="utf-8"))["properties"])
     return schema
 
 
@@ -137,6 +138,7 @@ def validate(config: dict) -> dict:
     Returns a new dict; raises :class:`ConfigError` naming the first bad key.
     """
     config = copy.deepcopy(config or {})
+    _check_placeholders({key: value for key, value in config.items() if key != "provenance"})
     validator = _Validator(load_schema())
     errors = sorted(validator.iter_errors(config),
                     key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
@@ -152,6 +154,20 @@ def validate(config: dict) -> dict:
         raise ConfigError(key, f"{err.instance!r}", _expected(err))
     _check_consistency(config)
     return config
+
+
+def _check_placeholders(value, key: str = ""):
+    """Refuse a value still holding the :data:`PLACEHOLDER` of a starter config, naming its key."""
+    if isinstance(value, dict):
+        for name, item in value.items():
+            _check_placeholders(item, f"{key}.{name}" if key else str(name))
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            _check_placeholders(item, f"{key}[{i}]")
+    elif isinstance(value, str) and value.startswith(PLACEHOLDER):
+        raise ConfigError(key, f"the placeholder {value!r} of a starter config",
+                          "your own value in its place (edit the config file; for run.files the paths of your "
+                          "HDF5 run files, or give them on the command line: movieproc process RUN.h5 --config FILE)")
 
 
 def _expected(err) -> str:
@@ -225,10 +241,16 @@ def read_file(path) -> dict:
 
 
 def build(path=None, overrides=None, layers=()) -> dict:
-    """The raw config before validation: the file, then each ``layers`` mapping merged in as data,
-    then the ``dotted.key=value`` overrides (parsed as YAML)."""
-    path = Path(path) if path else DEFAULT_CONFIG
+    """The raw config before validation: the file (default: the demo config), then each ``layers``
+    mapping merged in as data, then the ``dotted.key=value`` overrides (parsed as YAML).
+
+    In a config shipped with movieproc, ``demo_data/NAME`` names the shipped demo file, wherever
+    movieproc runs; every other relative path (in a user's file, a layer or an override) stays
+    relative to the working folder of the run."""
+    path = Path(path) if path else resources.default_config()
     raw = read_file(path)
+    if resources.is_shipped_config(path):
+        raw = resources.resolve_demo_paths(raw)
     for layer in layers:
         raw = merge(raw, layer)
     raw = apply_overrides(raw, overrides)

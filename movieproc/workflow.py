@@ -1,8 +1,9 @@
 """Running the Snakemake workflow from Python (what ``movieproc run`` does).
 
-Wraps Snakemake's Python API: the workflow in ``workflow/Snakefile`` runs in the
-current directory with a config that movieproc has already loaded, overridden
-and validated, so a bad config never starts a job. Before Snakemake starts:
+Wraps Snakemake's Python API: the workflow in ``workflow/Snakefile`` (shipped with the
+package, :func:`movieproc.resources.workflow_file`) runs in the current directory
+with a config that movieproc has already loaded, overridden and validated, so a
+bad config never starts a job. Before Snakemake starts:
 
 - the output folder is checked (not a file, writable) and the temporary siblings
   of stages killed in an earlier run are removed;
@@ -28,12 +29,10 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-from .config import ROOT
+from . import resources
 from .errors import InputError, MovieprocError, WorkflowFailed
 
 log = logging.getLogger("movieproc")
-
-SNAKEFILE = ROOT / "workflow" / "Snakefile"
 
 #: Marker left in the output folder after a failed run while an earlier movie or figures remain.
 STALE_FILE = "STALE.txt"
@@ -467,7 +466,7 @@ def _snakemake(config_file: Path, run: _Run, workdir, out: Path) -> list:
             wf = api.workflow(
                 resource_settings=settings.pop("resources"),
                 config_settings=ConfigSettings(configfiles=[config_file], replace_workflow_config=True),
-                snakefile=SNAKEFILE,
+                snakefile=resources.workflow_file(),
                 workdir=_base(workdir).absolute(),
             )
             dag = wf.dag(DAGSettings(targets=frozenset(run.targets), forcerun=frozenset(run.forcerun),
@@ -492,8 +491,14 @@ PARALLEL_RULES = ("ingest", "select", "difference", "scatter", "analyze")
 
 
 def profile_file(profile) -> Path:
-    """The YAML file of a Snakemake profile: the path itself, or ``config.yaml`` (``profile.yaml``) in it."""
+    """The YAML file of a Snakemake profile: the path itself, or ``config.yaml`` (``profile.yaml``) in it.
+
+    A path that does not exist and ends in the name of a profile shipped with movieproc (``cluster``,
+    ``workflow/profiles/cluster``) means that profile, so the README's commands work from any folder."""
     path = Path(profile)
+    shipped = resources.profile(path.name)
+    if not path.exists() and path.name and shipped.is_dir():
+        path = shipped
     if path.is_file():
         return path
     for name in ("config.yaml", "profile.yaml"):

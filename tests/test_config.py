@@ -1,15 +1,17 @@
 """Tests of movieproc.config: loading, --set overrides, schema validation and its errors."""
 
 import copy
+from pathlib import Path
 
 import pytest
 import yaml
 
 from movieproc import cli
 from movieproc import config as C
+from movieproc import resources
 from movieproc.errors import ConfigError
 
-SCHEMA = yaml.safe_load((C.SCHEMA_DIR / "config.schema.yaml").read_text())
+SCHEMA = yaml.safe_load(resources.schema("config").read_text())
 
 
 def _defaults(schema_props, prefix=""):
@@ -39,7 +41,7 @@ def _minimal(tmp_path, text="run:\n  files: [a.h5]\n"):
 
 def test_demo_config_loads_and_records_its_file():
     cfg = C.load()
-    assert cfg["provenance"]["config_file"] == str(C.DEFAULT_CONFIG)
+    assert cfg["provenance"]["config_file"] == str(resources.default_config())
     assert cfg["timing"]["sign"] == -1  # as written in config/config.yaml
     assert cfg["binning"]["mode"] == "edges"
 
@@ -184,3 +186,85 @@ def test_cli_reports_config_errors_and_writes_nothing(args, needle, tmp_path, mo
     assert err.startswith("movieproc: error: ")
     assert needle in err
     assert list(tmp_path.iterdir()) == []  # nothing written, no workflow started
+
+
+# ------------------------------------------------------------------ shipped files and their paths
+
+def test_shipped_demo_config_names_the_shipped_demo_files():
+    cfg = C.load()
+    ground = resources.demo_file("ground.xyz")
+    assert ground.is_file() and cfg["model"]["ground"] == str(ground)
+    assert cfg["model"]["trajectory"] == [str(resources.demo_file("excited_trajectory.xyz"))]
+    assert cfg["solvent"]["differentials"] == str(resources.demo_file("solvent_differentials.csv"))
+    assert cfg["run"]["generate"]["scenario"] == str(resources.demo_file("scenario.yaml"))
+    # what the run writes stays relative to the working folder (config/config.yaml)
+    assert cfg["run"]["files"] == ["resources/demo/run_000.h5", "resources/demo/run_001.h5"]
+    assert cfg["output_dir"] == "results/demo"
+
+
+def test_user_given_demo_paths_stay_relative_to_the_working_folder(tmp_path):
+    # an override, and a user's own copy of the demo config, name files in the user's folder
+    cfg = C.load(overrides=["model.ground=demo_data/ground.xyz"])
+    assert cfg["model"]["ground"] == "demo_data/ground.xyz"
+    own = tmp_path / "my.yaml"
+    own.write_text(resources.default_config().read_text())
+    assert C.load(own)["model"]["ground"] == "demo_data/ground.xyz"
+
+
+def test_resources_lie_in_one_data_folder():
+    root = resources.data_root()
+    for path in (resources.workflow_file(), resources.default_config(), resources.process_config(),
+                 resources.schema("config"), resources.schema("detector"), resources.schema("analysis"),
+                 resources.demo_file("scenario.yaml"), resources.profile("cluster") / "config.yaml"):
+        assert path.is_file() and root in path.parents, path
+
+
+def test_shipped_profile_is_found_by_name_from_any_folder(tmp_path, monkeypatch):
+    from movieproc.workflow import profile_file
+
+    monkeypatch.chdir(tmp_path)
+    assert profile_file("workflow/profiles/cluster") == resources.profile("cluster") / "config.yaml"
+    own = tmp_path / "workflow" / "profiles" / "cluster"
+    own.mkdir(parents=True)
+    (own / "config.yaml").write_text("executor: local\n")
+    assert profile_file("workflow/profiles/cluster") == Path("workflow/profiles/cluster/config.yaml")
+
+
+# ------------------------------------------------------------------ movieproc init
+
+def test_starter_config_holds_the_generic_settings_and_a_placeholder(tmp_path, capsys):
+    from movieproc import init_command
+
+    assert cli.main(["init", str(tmp_path / "new")]) == 0
+    path = tmp_path / "new" / "config.yaml"
+    assert f"movieproc run --config {path}" in capsys.readouterr().out
+    text = path.read_text()
+    starter, generic = C.read_file(path), C.read_file(resources.process_config())
+    assert starter["run"]["files"] == [init_command.RUN_FILES_PLACEHOLDER]
+    starter["run"]["files"] = generic["run"]["files"]
+    assert starter == generic  # the values are the shipped generic settings
+    for section in generic:  # each section has its comment just above it
+        above = text.split(f"\n{section}:", 1)[0].rstrip().splitlines()[-1]
+        assert above.startswith("# "), section
+    with pytest.raises(ConfigError, match=r"run\.files\[0\].*placeholder"):
+        C.load(path)
+
+
+def test_check_and_run_refuse_the_placeholder(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert cli.main(["init", "."]) == 0
+    capsys.readouterr()
+    assert cli.main(["check", "--config", "config.yaml"]) == 1
+    assert "run.files[0]" in capsys.readouterr().out
+    assert cli.main(["run", "--config", "config.yaml"]) == 2
+    assert "placeholder" in capsys.readouterr().err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["config.yaml"]  # nothing run, nothing written
+
+
+def test_init_keeps_an_existing_config_unless_forced(tmp_path, capsys):
+    path = tmp_path / "config.yaml"
+    path.write_text("mine\n")
+    assert cli.main(["init", str(tmp_path)]) == 2
+    assert "--force" in capsys.readouterr().err and path.read_text() == "mine\n"
+    assert cli.main(["init", str(tmp_path), "--force"]) == 0
+    assert C.read_file(path)["run"]["name"] == "run"

@@ -31,6 +31,7 @@ and writes.
 from __future__ import annotations
 
 import logging
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
@@ -60,6 +61,11 @@ CONFIG_KEYS = {"variance": "detector.variance", "sectors": "detector.sectors",
                "scheduler": "compute.scheduler"}
 #: q points named in full in an error message before it says "...".
 NAMED_Q_POINTS = 6
+#: Tasks per worker the frames are split into at least (each task a whole number of store chunks), so
+#: that every worker has work to the end: one task of compute.chunk_shots frames would leave the other
+#: workers idle on a run of a few thousand frames.
+TASKS_PER_WORKER = 4
+
 #: Frames averaged for the geometry check: enough for a clear solvent ring, cheap next to the run.
 CHECK_FRAMES = 32
 UNITS = "detector units / (solid angle and polarization factors)"
@@ -354,12 +360,24 @@ def _integrate_range(start, stop, info, setup, paths, block):
     return excluded, lost_sector, lost_var
 
 
-def _integrate_all(info, setup, paths, compute, warnings) -> int:
-    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out."""
+def _block_frames(info) -> int:
+    """Frames read and integrated at once: about BLOCK_BYTES, a multiple of the kernel's lanes."""
     frame_bytes = int(np.prod(info.frame_shape)) * info.data_dtype.itemsize
-    block = max(integration.LANES, BLOCK_BYTES // frame_bytes // integration.LANES * integration.LANES)
+    return max(integration.LANES, BLOCK_BYTES // frame_bytes // integration.LANES * integration.LANES)
+
+
+def task_frames(n_shots: int, chunk_shots: int, workers: int, block: int) -> int:
+    """Frames per task (and per store chunk): at most ``chunk_shots``, small enough for
+    :data:`TASKS_PER_WORKER` tasks per worker, at least one read block."""
+    want = -(-int(n_shots) // (TASKS_PER_WORKER * max(1, int(workers))))
+    return max(1, min(int(chunk_shots), max(int(block), want)))
+
+
+def _integrate_all(info, setup, paths, compute, chunk, warnings) -> int:
+    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out."""
+    block = _block_frames(info)
     work = partial(_integrate_range, info=info, setup=setup, paths=paths, block=block)
-    results = map_ranges(work, chunk_ranges(info.n_shots, int(compute["chunk_shots"])), compute["workers"],
+    results = map_ranges(work, chunk_ranges(info.n_shots, chunk), compute["workers"],
                          compute["scheduler"], compute["progress"], "integrate")
     excluded, lost_sector, lost_var = (int(sum(r[i] for r in results)) for i in range(3))
     if lost_sector:
@@ -394,28 +412,33 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     if info.mode != "frames":
         raise InputError(info.files[0], "pre-integrated curves",
                          "detector frames (N, ny, nx) for the integrate stage (curves go through ingest)")
-    warnings = Warnings("integrate", log)
-    table = runfile.read_table(info)
-    with config_keys(CONFIG_KEYS, config):
-        photon, origins = _photon_energies(info, table, detector, warnings)
-        log.info("run of %d shots in %d file(s), frames %s (%s); photon energy %.4f-%.4f keV (%s)",
-                 info.n_shots, len(info.files), " x ".join(str(v) for v in info.frame_shape or ()), info.data_dtype,
-                 photon.min(), photon.max(),
-                 ", ".join(f"{v} from {k}" for k, v in origins.items() if v))
-        setup = _setup(info, detector, photon, warnings)
-        ring = _geometry_check(info, detector, setup, warnings)
-    attrs = {
-        "mode": "frames", "files": [str(f) for f in info.files],
-        "checksums": {str(f): shotstore.file_checksum(f) for f in info.files}, "counts": info.counts,
-        "detector": detector, "reference_energy_kev": setup.reference_energy, "photon_energy_origin": origins,
-        "pixels_left_out": setup.reasons, "pixels_used": setup.used, "geometry_check": ring,
-        "written": now(), "versions": versions(),
-    }
-    with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
-        group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon),
-                                     int(compute["chunk_shots"]), attrs)
-        excluded = _integrate_all(info, setup, paths, compute, warnings)
-        store.update_attrs(group, {"shot_pixels_left_out": excluded, "warnings": list(warnings)})
+    # the checksums are computed in a thread beside the set-up and the integration (xxhash releases
+    # the GIL): on a run of many frames they cost about a third of the integration's time
+    with ThreadPoolExecutor(max_workers=1) as hashing:
+        checksums = hashing.submit(lambda: {str(f): shotstore.file_checksum(f) for f in info.files})
+        warnings = Warnings("integrate", log)
+        table = runfile.read_table(info)
+        with config_keys(CONFIG_KEYS, config):
+            photon, origins = _photon_energies(info, table, detector, warnings)
+            log.info("run of %d shots in %d file(s), frames %s (%s); photon energy %.4f-%.4f keV (%s)",
+                     info.n_shots, len(info.files), " x ".join(str(v) for v in info.frame_shape or ()), info.data_dtype,
+                     photon.min(), photon.max(),
+                     ", ".join(f"{v} from {k}" for k, v in origins.items() if v))
+            setup = _setup(info, detector, photon, warnings)
+            ring = _geometry_check(info, detector, setup, warnings)
+        attrs = {
+            "mode": "frames", "files": [str(f) for f in info.files],
+            "counts": info.counts,
+            "detector": detector, "reference_energy_kev": setup.reference_energy, "photon_energy_origin": origins,
+            "pixels_left_out": setup.reasons, "pixels_used": setup.used, "geometry_check": ring,
+            "written": now(), "versions": versions(),
+        }
+        chunk = task_frames(info.n_shots, compute["chunk_shots"], compute["workers"], _block_frames(info))
+        with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
+            group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon), chunk, attrs)
+            excluded = _integrate_all(info, setup, paths, compute, chunk, warnings)
+            store.update_attrs(group, {"shot_pixels_left_out": excluded, "warnings": list(warnings),
+                                       "checksums": checksums.result()})
     log.info("integrated %d shots onto %d q points (reference %.4f keV, energy-aware %s); %d shot pixels left "
              "out (non-finite or saturated); wrote %s", info.n_shots, setup.layout.q.size, setup.reference_energy,
              detector["energy_aware"], excluded, out)
