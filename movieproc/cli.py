@@ -7,6 +7,7 @@
     movieproc check     list every problem of run files and a config, before a run
     movieproc sign-check  which sign of the timing correction sharpens the onset
     movieproc calibrate detector geometry from a calibrant powder image
+    movieproc export    a movie as a netCDF-4 file
     movieproc render    re-draw the figures and report.html of an existing movie (runs nothing)
     movieproc init      write a starter config to fill in
 
@@ -297,9 +298,10 @@ def build_parser():
     add_set(p)
     p.set_defaults(func=cmd_summary)
 
-    from . import calibrate_command, init_command, render_command
+    from . import calibrate_command, export_command, init_command, render_command
 
     calibrate_command.add_parser(sub)
+    export_command.add_parser(sub)
     render_command.add_parser(sub)
     init_command.add_parser(sub)
     return parser

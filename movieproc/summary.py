@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .io import runfile, store
+from .io import movie, runfile, store
 from .shots.timing import timing_correction
 from .warning_groups import summary_lines
 
@@ -61,43 +61,57 @@ def summarize_movie(path) -> str:
     """Delays, shots per bin, signal size, fit quality and warnings of a movie store."""
     m = store.open_group(path, "movie")
     delay = store.read(m, "delay")
-    n = store.read(m, "n_shots")
+    n = store.read(m, "shot_count")
     q = store.read(m, "q")
-    diff = store.read(m, "diff")
-    err = store.read(m, "diff_err")
-    low = store.read(m, "low_count")
+    diff = store.read(m, "difference")
+    err = store.read(m, "difference_error")
+    low = store.read(m, "too_few_shots")
     a = m.attrs
+    version = (store.yaml_value(a, "software_versions", {}) or {}).get("movieproc")
     lines = [
         f"movie: {path}",
-        f"written {a.get('written')} by movieproc {a.get('versions', {}).get('movieproc')}",
-        f"inputs: {', '.join(a.get('input_files', []))}",
+        f"written {a.get('written')} by movieproc {version}",
+        f"inputs: {', '.join(movie.input_files(m))}",
         f"delays: {delay.size} bins from {np.nanmin(delay):.4g} to {np.nanmax(delay):.4g} ps; "
         f"pump-on shots per bin {int(n.min())}-{int(n.max())} (median {int(np.median(n))})",
         f"q: {q.size} points {q[0]:.3g}-{q[-1]:.3g} 1/Å",
         f"difference: max |dS| {np.nanmax(np.abs(diff)):.3g}, median standard error {np.nanmedian(err):.3g} "
-        f"({m['diff'].attrs.get('units', '')})",
+        f"({movie.display_units(m['difference'])})",
     ]
-    sc = a.get("selection_counts", {})
-    if sc:
-        summed = ("total", "kept", "dropped", "kept_pump_on", "kept_pump_off", "outlier_pump_on", "outlier_pump_off")
-        lines.append(f"selection: kept {sc.get('kept')} of {sc.get('total')} shots; dropped per reason: "
-                     + ", ".join(f"{k} {v}" for k, v in sc.items() if k not in summed))
-        if "outlier_pump_on" in sc:
-            lines.append(f"outliers: {sc['outlier_pump_on']} pump-on, {sc['outlier_pump_off']} pump-off")
+    lines += _selection_lines(movie.selection_counts(m))
     if low.any():
         few = ", ".join(f"{d:.3g} ps ({c})" for d, c in zip(delay[low], n[low], strict=True))
         lines.append(f"bins with too few shots: {few}")
-    if "chi2" in m:
-        chi2 = store.read(m, "chi2")
-        lines.append(f"fit: reduced chi2 per delay median {np.nanmedian(chi2):.2f}, max {np.nanmax(chi2):.2f}")
-    for key in ("fit_parameters",):
-        if key in a:
-            lines.append("fitted parameters: " + ", ".join(
-                f"{k} = {v['value']:.4g} ± {v['error']:.2g}"
-                + (f" {v['units']}" if v.get("units") not in (None, "", "1") else "")
-                + (f" (bootstrap ± {v['bootstrap_error']:.2g})" if "bootstrap_error" in v else "")
-                for k, v in a[key].items()))
-            if not a.get("fit_converged", True):
-                lines.append("FIT DID NOT CONVERGE: the parameters above are not reliable")
-    lines += summary_lines(a.get("warnings", []))
+    lines += _fit_lines(m)
+    lines += summary_lines(movie.warnings(m))
     return "\n".join(lines)
+
+
+def _selection_lines(sc):
+    """Shots kept and dropped per reason."""
+    if not sc:
+        return []
+    summed = ("total", "kept", "dropped", "kept_pump_on", "kept_pump_off", "outlier_pump_on", "outlier_pump_off")
+    lines = [f"selection: kept {sc.get('kept')} of {sc.get('total')} shots; dropped per reason: "
+             + ", ".join(f"{k} {v}" for k, v in sc.items() if k not in summed)]
+    if "outlier_pump_on" in sc:
+        lines.append(f"outliers: {sc['outlier_pump_on']} pump-on, {sc['outlier_pump_off']} pump-off")
+    return lines
+
+
+def _fit_lines(m):
+    """Reduced chi2 per delay and the fitted parameters, saying plainly when the fit did not converge."""
+    lines = []
+    if "reduced_chi_squared" in m:
+        chi2 = store.read(m, "reduced_chi_squared")
+        lines.append(f"fit: reduced chi2 per delay median {np.nanmedian(chi2):.2f}, max {np.nanmax(chi2):.2f}")
+    params = movie.fit_parameters(m)
+    if params:
+        lines.append("fitted parameters: " + ", ".join(
+            f"{k} = {v['value']:.4g} ± {v['error']:.2g}"
+            + (f" {v['units']}" if v.get("units") not in (None, "", "1") else "")
+            + (f" (bootstrap ± {v['bootstrap_error']:.2g})" if "bootstrap_error" in v else "")
+            for k, v in params.items()))
+        if not movie.fit_converged(m):
+            lines.append("FIT DID NOT CONVERGE: the parameters above are not reliable")
+    return lines

@@ -12,7 +12,7 @@ import pytest
 from movieproc import config as mpconfig
 from movieproc import synth
 from movieproc.errors import ConfigError, DataError, InputError, ParameterError
-from movieproc.io import store
+from movieproc.io import movie, store
 from movieproc.stages import analyze, bins, delays, difference, ingest, scatter, select
 from movieproc.stages.keys import config_keys
 
@@ -90,14 +90,14 @@ def _true_distance(d, group):
 @pytest.mark.slow
 def test_fit_recovers_the_scenario(reduced):
     a = _analyze(reduced, "analysis.zarr")
-    p = a.attrs["fit_parameters"]
+    p = movie.fit_parameters(a)
     sc = synth.load_scenario(SCENARIO)
     kin, tim = sc["kinetics"], sc["timing"]
     # Truth (demo_data/scenario.yaml, invented): the instrument response is the pulses'
     # Gaussian sigma and the timing tool's measurement noise added in quadrature.
     true = {"t0": kin["time_zero"], "sigma": float(np.hypot(kin["irf_sigma"], tim["tool_noise_rms"])),
             "lifetime": kin["lifetime"], "alpha": kin["excitation_fraction"]}
-    assert a.attrs["fit_converged"] and not a.attrs["fit_at_bound"]
+    assert movie.fit_converged(a) and not store.read(a, "fit_at_bound").any()
     assert abs(p["lifetime"]["value"] / true["lifetime"] - 1) < 0.05           # issue: lifetime within 5 %
     assert abs(p["t0"]["value"] - true["t0"]) < 0.020                          # time zero within 20 fs
     assert abs(p["sigma"]["value"] / true["sigma"] - 1) < 0.20                 # IRF width within 20 %
@@ -111,20 +111,21 @@ def test_fit_recovers_the_scenario(reduced):
 @pytest.mark.slow
 def test_structure_per_delay_matches_truth(reduced):
     a = _analyze(reduced, "analysis.zarr")
-    est = store.read(a, "geometry_Ir-Ir")
-    lo, hi = store.read(a, "geometry_Ir-Ir_lower"), store.read(a, "geometry_Ir-Ir_upper")
-    n = store.read(store.open_group(reduced / "binned.zarr"), "n_shots")
+    assert [str(p) for p in a["parameter"][...]] == ["Ir-Ir"]  # the config's fit.geometry names
+    est = store.read(a, "geometry")[:, 0]
+    lo, hi = store.read(a, "geometry_lower")[:, 0], store.read(a, "geometry_upper")[:, 0]
+    n = store.read(store.open_group(reduced / "binned.zarr"), "shot_count")
     truth = _true_distance(reduced, a)
     reported = np.isfinite(est)
     # every bin with enough shots and an excited-state signal gets a structure ...
-    strong = (n >= 50) & (store.read(a, "population")[:, 0] * a.attrs["fit_parameters"]["alpha"]["value"] > 0.03)
+    strong = (n >= 50) & (store.read(a, "population")[:, 0] * movie.fit_parameters(a)["alpha"]["value"] > 0.03)
     assert np.all(reported[strong])
     assert reported.sum() >= 25
     # ... within 0.05 Å of the true Ir-Ir distance (issue's acceptance figure)
     assert np.nanmax(np.abs(est - truth)[reported]) < 0.05
     # 2-sigma (delta chi2 = 4) intervals contain the truth at >= 90 % of the reported delays
     a2 = _analyze(reduced, "analysis_2sigma.zarr", "fit.delta_chi2=4")
-    lo2, hi2 = store.read(a2, "geometry_Ir-Ir_lower"), store.read(a2, "geometry_Ir-Ir_upper")
+    lo2, hi2 = store.read(a2, "geometry_lower")[:, 0], store.read(a2, "geometry_upper")[:, 0]
     inside = (lo2 <= truth + 1e-9) & (truth - 1e-9 <= hi2)
     assert inside[reported].mean() >= 0.9, inside[reported].mean()
     assert np.all(lo[reported] <= est[reported]) and np.all(est[reported] <= hi[reported])
@@ -144,17 +145,17 @@ def test_solvent_terms_matter(reduced):
     assert off.attrs["fit_reduced_chi2"] > on.attrs["fit_reduced_chi2"] + 5 * np.sqrt(2 / 6800)
     delay = store.read(on, "delay")
     late = delay > 10
-    chi_on, chi_off = store.read(on, "chi2")[late], store.read(off, "chi2")[late]
+    chi_on, chi_off = store.read(on, "reduced_chi_squared")[late], store.read(off, "reduced_chi_squared")[late]
     assert np.nanmean(chi_off) > np.nanmean(chi_on) + 0.1
     # the kinetics are biased: the unmodelled heating, which grows as the excited state
     # decays, pulls the lifetime away from the scenario's 30 ps by more than 2 sigma
-    p_on, p_off = on.attrs["fit_parameters"]["lifetime"], off.attrs["fit_parameters"]["lifetime"]
+    p_on, p_off = movie.fit_parameters(on)["lifetime"], movie.fit_parameters(off)["lifetime"]
     assert abs(p_on["value"] - 30.0) <= 2 * p_on["error"]
     assert abs(p_off["value"] - 30.0) > 2 * p_off["error"]
     # and so is the structure at late delays, where heating is largest
     truth = _true_distance(reduced, on)
     after = delay > 2
-    est_on, est_off = store.read(on, "geometry_Ir-Ir")[after], store.read(off, "geometry_Ir-Ir")[after]
+    est_on, est_off = store.read(on, "geometry")[after, 0], store.read(off, "geometry")[after, 0]
     both = np.isfinite(est_on) & np.isfinite(est_off)
     assert both.sum() >= 3
     err_on, err_off = np.abs(est_on - truth[after])[both], np.abs(est_off - truth[after])[both]
@@ -167,10 +168,10 @@ def test_species_mode_with_free_curves(reduced):
     # a one-lifetime species model with a free curve finds the scenario's 30 ps.
     a = _analyze(reduced, "species.zarr", "fit.mode=species", "fit.species_curves=free", "fit.lifetimes_ps=[20.0]",
                  "fit.delay_range_ps=[1.5, 200]")
-    p = a.attrs["fit_parameters"]
+    p = movie.fit_parameters(a)
     assert abs(p["lifetime_1"]["value"] / 30.0 - 1) < 0.1
     assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
-    assert a.attrs["fit_converged"]
+    assert movie.fit_converged(a)
 
 
 @pytest.mark.slow
@@ -200,17 +201,17 @@ def test_bootstrap_over_shots(reduced):
     difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
                     "bins": reduced / "bins.zarr"}, reduced / "binned_boot.zarr", cfg)
     b = store.open_group(reduced / "binned_boot.zarr")
-    boot = store.read(b, "diff_boot")
+    boot = store.read(b, "difference_replicates")
     assert boot.shape[0] == 12
     # each replicate is a resampled estimate of the same per-bin mean: the replicates
     # scatter about the full-data diff by about its standard error (ratio ~1; the bootstrap
     # of a mean reproduces the standard error, Efron & Tibshirani 1993, ch. 6, from memory)
-    diff, err = store.read(b, "diff"), store.read(b, "diff_err")
-    ok = ~store.read(b, "low_count")
+    diff, err = store.read(b, "difference"), store.read(b, "difference_error")
+    ok = ~store.read(b, "too_few_shots")
     ratio = np.nanstd(boot[:, ok] - diff[None, ok], axis=0) / err[ok]
     assert 0.7 < np.nanmedian(ratio) < 1.4, np.nanmedian(ratio)
     _run_analyze(reduced / "binned_boot.zarr", reduced / "models.zarr", reduced / "boot.zarr", cfg)
-    p = store.open_group(reduced / "boot.zarr").attrs["fit_parameters"]
+    p = movie.fit_parameters(store.open_group(reduced / "boot.zarr"))
     for name in ("t0", "sigma", "lifetime", "alpha"):
         assert "12 replicates over shots" in p[name]["bootstrap"]
             # 12 replicates fix a standard deviation to ~20 % (1/sqrt(2*11)); the Jacobian error
@@ -225,7 +226,7 @@ def test_network_kinetics_and_its_validation(reduced):
     # ground state S1) finds the same 30 ps lifetime as the sequential scheme.
     a = _analyze(reduced, "network.zarr", "fit.mode=species", "fit.species_curves=free", "fit.kinetics=network",
                  "fit.network=[[0, 1]]", "fit.lifetimes_ps=[20.0]", "fit.delay_range_ps=[1.5, 200]")
-    p = a.attrs["fit_parameters"]
+    p = movie.fit_parameters(a)
     assert abs(p["lifetime_1"]["value"] - 30.0) <= 3 * p["lifetime_1"]["error"]
     # transitions that do not match the lifetimes, or a self-transition: refused with the key named
     with pytest.raises(ConfigError, match="fit.network"):
@@ -245,7 +246,7 @@ def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
         difference.run({"shots": reduced / "shots.zarr", "selection": reduced / "selection.zarr",
                         "bins": reduced / "bins.zarr"}, tmp_path / f"binned_{mode}.zarr", cfg)
         _run_analyze(tmp_path / f"binned_{mode}.zarr", reduced / "models.zarr", tmp_path / f"{mode}.zarr", cfg)
-        p = store.open_group(tmp_path / f"{mode}.zarr").attrs["fit_parameters"]["alpha"]
+        p = movie.fit_parameters(store.open_group(tmp_path / f"{mode}.zarr"))["alpha"]
         # scenario truth 0.15 (demo_data/scenario.yaml), within 3 of its standard errors
         assert abs(p["value"] - 0.15) < 3 * p["error"], (mode, p)
 
@@ -253,10 +254,10 @@ def test_absolute_scale_follows_the_normalization(reduced, tmp_path):
 @pytest.mark.slow
 def test_relative_scale_says_its_solvent_units_are_arbitrary(reduced):
     a = _analyze(reduced, "relative.zarr", "scaling.mode=relative")
-    assert a["solvent_coef"].attrs["units"] == "arbitrary"
-    assert any("arbitrary units" in w for w in a.attrs["warnings"])
+    assert set(a["term_units"][...]) == {"1"} and a["solvent_coefficient"].attrs["units"] == "1"
+    assert any("arbitrary units" in w for w in movie.warnings(a))
     b = _analyze(reduced, "absolute.zarr")
-    assert b["solvent_coef"].attrs["units"].startswith("K")
+    assert dict(zip(b["term"][...], b["term_units"][...], strict=True))["dT"] == "K"
 
 
 @pytest.mark.slow
@@ -337,8 +338,8 @@ def test_energy_nuisance_term(reduced):
     # the demo curves carry no photon-energy mismatch: the extra term changes the fit by
     # less than its errors (scenario truth, demo_data/scenario.yaml: alpha 0.15)
     a = _analyze(reduced, "energy.zarr", "solvent.energy_term=true")
-    assert "energy" in a.attrs["solvent_terms"]
-    p = a.attrs["fit_parameters"]["alpha"]
+    assert "energy" in a["term"][...]
+    p = movie.fit_parameters(a)["alpha"]
     assert abs(p["value"] - 0.15) < 3 * p["error"]
 
 
@@ -434,7 +435,7 @@ def test_a_singular_bin_correlation_names_the_references_key(tmp_path):
     # two bins whose differences are the same linear combination of shots: R = [[1, 1], [1, 1]]
     data = analyze.Data(path=tmp_path / "binned.zarr", q=np.zeros(1), delay=np.zeros(2), diff=np.zeros((2, 1)),
                         err=np.ones((2, 1)), low=np.zeros(2, bool), off_mean=np.zeros((2, 1)), spread=np.zeros(2),
-                        boot=None, units="", models=None, correlation=np.ones((2, 2)))
+                        boot=None, units="", units_description="", models=None, correlation=np.ones((2, 2)))
     with pytest.raises(ConfigError) as err:
         analyze._correlation(data, np.ones(2, bool))
     assert err.value.key == "differences.references" and _schema_has(err.value.key)

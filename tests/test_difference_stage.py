@@ -76,7 +76,7 @@ def test_stage_differences_and_correlation_match_an_explicit_reduction(tmp_path)
     got = run_stage(tmp_path, "binned.zarr", config())
     diff, A = explicit(curves, keep, pump_on, index)
     # float32 curves, float64 sums: agreement to float32 rounding of the normalized curves (~1e-7)
-    np.testing.assert_allclose(got["diff"], diff, rtol=0, atol=2e-6)
+    np.testing.assert_allclose(got["difference"], diff, rtol=0, atol=2e-6)
     M = A @ A.T  # Cov(D_b, D_c) = s^2 (A A^T)_bc for independent shots of equal variance s^2
     R = M / np.sqrt(np.outer(np.diag(M), np.diag(M)))
     assert got["delay_correlation"].shape == (NB, NB)
@@ -84,29 +84,29 @@ def test_stage_differences_and_correlation_match_an_explicit_reduction(tmp_path)
     assert np.all(np.diag(R, 1) > 0.05)  # the jitter spreads positions over neighbouring bins
     g = store.open_group(tmp_path / "binned.zarr")
     assert list(g["delay_correlation"].metadata.dimension_names) == ["delay", "delay_other"]
-    assert "shared pump-off references" in g["delay_correlation"].attrs["meaning"]
-    assert "diff_boot" not in got
+    assert "shared pump-off references" in g["delay_correlation"].attrs["long_name"]
+    assert "difference_replicates" not in got
 
 
 def test_chunking_and_workers_change_nothing(tmp_path):
     make_run(tmp_path, seed=1)
     a = run_stage(tmp_path, "a.zarr", config(bootstrap=4, chunk=16, workers=1))
     b = run_stage(tmp_path, "b.zarr", config(bootstrap=4, chunk=2000, workers=2))
-    for name in ("diff", "diff_err", "on_mean", "off_mean", "delay_correlation", "reference_sharing"):
+    for name in ("difference", "difference_error", "pump_on_mean", "pump_off_mean", "delay_correlation", "reference_sharing"):
         np.testing.assert_allclose(a[name], b[name], rtol=1e-6, atol=1e-9, err_msg=name)
     # bootstrap sums are float64 over float32 products of centred curves: equal to float32 rounding
-    np.testing.assert_allclose(a["diff_boot"], b["diff_boot"], rtol=0, atol=1e-6)
+    np.testing.assert_allclose(a["difference_replicates"], b["difference_replicates"], rtol=0, atol=1e-6)
 
 
 def test_stage_bootstrap_covariance_matches_the_correlation(tmp_path):
     make_run(tmp_path, seed=2, jitter=1.5)
     got = run_stage(tmp_path, "boot.zarr", config(bootstrap=300, chunk=128, workers=2))
-    reps = got["diff_boot"].astype(np.float64)
+    reps = got["difference_replicates"].astype(np.float64)
     assert reps.shape == (300, NB, NQ) and np.all(np.isfinite(reps))
     # replicates scatter about diff by its standard error (the bootstrap of a mean reproduces the
     # standard error, Efron & Tibshirani 1993, ch. 6, from memory); 300 replicates fix a standard
     # deviation to 4 %, averaged over 24 q points: a 0.85-1.15 band is several sigma wide
-    ratio = reps.std(axis=0, ddof=1) / got["diff_err"]
+    ratio = reps.std(axis=0, ddof=1) / got["difference_error"]
     assert 0.85 < np.median(ratio) < 1.15, np.median(ratio)
     # the first off-diagonal of the replicates' correlation against R (sampling error ~0.06/sqrt(24))
     R, R_boot = got["delay_correlation"], C.replicate_correlation(reps)

@@ -317,9 +317,10 @@ def test_end_to_end_with_nasty_paths_content_tracking_leftovers_and_stale_marker
     assert (out / "figures" / ".done").is_file()
     assert yaml.safe_load((out / "config.effective.yaml").read_text())["run"]["name"] == "yes"
     movie = zarr.open_group(str(out / "movie.zarr"), mode="r")
+    from movieproc.io import movie as movie_attrs
     from movieproc.io.shotstore import file_checksum
 
-    assert list(movie.attrs["input_checksums"].values()) == [file_checksum(f)]
+    assert list(movie_attrs.input_files(movie).values()) == [file_checksum(f)]
     assert "everything was up to date" not in capsys.readouterr().out
 
     assert cli.main(base) == 0
@@ -334,7 +335,7 @@ def test_end_to_end_with_nasty_paths_content_tracking_leftovers_and_stale_marker
     assert "everything was up to date" not in capsys.readouterr().out
     assert leftovers(out) == []
     movie = zarr.open_group(str(out / "movie.zarr"), mode="r")
-    assert list(movie.attrs["input_checksums"].values()) == [file_checksum(f)]
+    assert list(movie_attrs.input_files(movie).values()) == [file_checksum(f)]
 
     # a config the bin stage refuses: the earlier movie stays, marked stale
     bad = base + ["binning.mode=edges", "binning.edges_ps=[100.0, 200.0]"]

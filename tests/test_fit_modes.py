@@ -17,7 +17,7 @@ from movieproc import cli
 from movieproc import config as mpconfig
 from movieproc import synth
 from movieproc.errors import ConfigError
-from movieproc.io import shotstore, store
+from movieproc.io import movie, shotstore, store
 from movieproc.signals import covariance as C
 from movieproc.signals.differences import nearest_references
 from movieproc.stages import analyze, bins, delays, difference, ingest, scatter, select
@@ -131,15 +131,15 @@ def test_fit_mode_runs_or_refuses_clearly(small, case, tmp_path):
     if mode == "none":
         assert "fit_parameters" not in a.attrs
         return
-    p = a.attrs["fit_parameters"]
-    assert a.attrs["fit_errors"]["model"] == "correlated bins"
+    p = movie.fit_parameters(a)
+    assert a.attrs["fit_error_model"] == "correlated bins"
     for name, v in p.items():
         assert np.isfinite(v["value"]) and v["error"] > 0 and np.isfinite(v["error"]), (name, v)
         assert v["error_independent_bins"] > 0, (name, v)
         if boot:
             assert "2 replicates over shots" in v.get("bootstrap", ""), (name, v)
     # the per-delay structure step runs exactly when the model store has trajectory frames
-    assert ("frame" in a) == traj
+    assert ("best_frame" in a) == traj
 
 
 def test_species_fit_with_fixed_structures_through_the_cli(small, tmp_path, monkeypatch, capfd):
@@ -155,5 +155,5 @@ def test_species_fit_with_fixed_structures_through_the_cli(small, tmp_path, monk
     rc = cli.main(args)
     assert rc == 0, capfd.readouterr().err[-3000:]
     a = store.open_group(out / "analysis.zarr")
-    assert a.attrs["fit_mode"] == "species" and "alpha" in a.attrs["fit_parameters"]
-    assert "frame" not in a
+    assert a.attrs["fit_mode"] == "species" and "alpha" in movie.fit_parameters(a)
+    assert "best_frame" not in a

@@ -10,6 +10,7 @@ import pytest
 import xarray as xr
 
 from movieproc import config as mpconfig
+from movieproc.io import movie as movie_attrs
 from movieproc.io import store
 from movieproc.synth import _interp_rows
 from movieproc.workflow import run_workflow
@@ -31,7 +32,7 @@ def test_frames_demo_end_to_end(tmp_path):
     out = tmp_path / "out"
     assert any("movie.zarr" in u for u in updated)
     movie = xr.open_zarr(out / "movie.zarr", consolidated=False)
-    assert movie["diff"].dims == ("delay", "q") and movie["q"].attrs["units"] == "1/Å"
+    assert movie["difference"].dims == ("delay", "q") and movie["q"].attrs["units"] == "1/angstrom"
     np.testing.assert_allclose(movie["q"].values[[0, -1]], [0.75, 5.0])
     shots = store.open_group(out / "shots.zarr")
     assert shots.attrs["mode"] == "frames"
@@ -42,7 +43,7 @@ def test_frames_demo_end_to_end(tmp_path):
     q_truth, table = store.read(t, "q"), store.read(t, "diff_true")
     q = movie["q"].values
     on_q = np.stack([np.interp(q, q_truth, row) for row in table])
-    diff, err = movie["diff"].values, movie["diff_err"].values
+    diff, err = movie["difference"].values, movie["difference_error"].values
     truth = np.stack([_interp_rows(grid, on_q, true_delay[index == k]).mean(0) for k in range(diff.shape[0])])
     z = (diff - truth) / err
     # the acceptance figure for recovery: within 3 standard errors at >= 95 % of points
@@ -50,7 +51,7 @@ def test_frames_demo_end_to_end(tmp_path):
     assert 0.8 < np.std(z) < 1.25
     # the fit runs on integrated frames too and finds the scenario's lifetime (30 ps) and
     # excitation fraction (0.15) within 4 of its standard errors (6,000 shots: errors ~10 %)
-    p = movie.attrs["fit_parameters"]
+    p = movie_attrs.fit_parameters(store.open_group(out / "movie.zarr"))
     assert abs(p["lifetime"]["value"] - 30.0) < 4 * p["lifetime"]["error"]
     assert abs(p["alpha"]["value"] - 0.15) < 4 * p["alpha"]["error"]
     assert (out / "figures" / "difference_map.png").stat().st_size > 10_000

@@ -369,8 +369,8 @@ def test_per_shot_variance_matches_the_shot_to_shot_scatter(tmp_path):
 def test_variance_read_between_grid_points_is_conservative_as_documented(tmp_path):
     # Energy-aware: each shot's variance curve is interpolated like its curve (4-point Lagrange
     # weights c at fractional grid position u). The true variance of the interpolated mean is
-    # v c^T R c, with R the correlation of neighbouring grid values: with linear pixel
-    # splitting and pixels spread evenly over a grid step, neighbours share sum w_k w_k+1 =
+    # v c^T R c, with R the correlation of neighbouring grid values: with pixels shared linearly
+    # between neighbouring q points and pixels spread evenly over a grid step, neighbours share sum w_k w_k+1 =
     # int u (1 - u) du = 1/6 of the weight products against sum w_k^2 = 2 int u^2 du = 2/3,
     # so R has 1 on the diagonal and 1/4 next to it (derived in this test's comment).
     rng = np.random.default_rng(14)

@@ -238,3 +238,20 @@ def test_regressor_channels_match_the_sparse_reference(n_regressors):
     k = pairs.index((0, n_regressors))
     # (the reference matrix holds the weights as float32: relative rounding 6e-8)
     np.testing.assert_allclose(res.moments[0, k, 0], tent @ regs[-1].ravel(), rtol=2e-7)
+
+
+def test_pixels_go_wholly_to_the_nearest_q_point_when_not_shared():
+    """detector.share_pixels_between_q_points = false: each pixel counts once, at its nearest grid point."""
+    rng = np.random.default_rng(5)
+    coordinate = rng.uniform(0.6, 3.4, (40, 50))
+    grid = np.linspace(0.5, 3.5, 31)
+    nearest = integration.build_binning(coordinate, grid, share_between_points=False)
+    w = integration.weight_matrix(nearest).toarray()
+    # reference: plain numpy rounding to the nearest grid index, one whole pixel per point
+    index = np.rint((coordinate.ravel() - grid[0]) / (grid[1] - grid[0])).astype(int)
+    np.testing.assert_array_equal(w.sum(axis=1), np.bincount(index, minlength=grid.size))
+    assert set(np.unique(w)) <= {0.0, 1.0}
+    # shared (the default): the same total weight, spread over the two neighbouring points
+    shared = integration.weight_matrix(integration.build_binning(coordinate, grid)).toarray()
+    np.testing.assert_allclose(shared.sum(), w.sum())
+    assert np.count_nonzero(shared) > np.count_nonzero(w)

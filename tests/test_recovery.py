@@ -72,7 +72,8 @@ def test_demo_run_recovers_the_truth(demo_run):
     assert true_delay.size >= 20000
     np.testing.assert_array_equal(shots_pid, truth_pid)  # truth and shots in the same order
     index, = _read(demo_run.out / "bins.zarr", "index")
-    diff, err, delay, n, low = _read(demo_run.movie, "diff", "diff_err", "delay", "n_shots", "low_count")
+    diff, err, delay, n, low = _read(demo_run.movie, "difference", "difference_error", "delay",
+                                      "shot_count", "too_few_shots")
     assert not low.any()  # every bin of the demo has enough shots: all are compared
     print(check_recovery(diff, err, delay, n, index, demo_run.truth))
 
@@ -91,7 +92,8 @@ def test_stage_functions_recover_the_truth_with_other_bins(demo_run, tmp_path, b
     difference_stage.run({"shots": out / "shots.zarr", "selection": out / "selection.zarr",
                           "bins": tmp_path / "bins.zarr"}, tmp_path / "binned.zarr", cfg)
     index, = _read(tmp_path / "bins.zarr", "index")
-    diff, err, delay, n, low = _read(tmp_path / "binned.zarr", "diff", "diff_err", "delay", "n_shots", "low_count")
+    diff, err, delay, n, low = _read(tmp_path / "binned.zarr", "difference", "difference_error", "delay",
+                                      "shot_count", "too_few_shots")
     assert diff.shape[0] == 30  # binning.count = 30, or (2 - (-1)) / 0.1 bins of fixed width
-    # bins flagged low_count (fewer than binning.min_shots shots) have no reliable variance: left out
+    # bins flagged too_few_shots (fewer than binning.min_shots shots) have no reliable variance: left out
     print(check_recovery(diff, err, delay, n, index, demo_run.truth, use=~low))

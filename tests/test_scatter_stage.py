@@ -1,6 +1,7 @@
 """Model difference curves, cage term, real-space transform, geometry and the scatter stage."""
 
 import numpy as np
+import yaml
 import pytest
 
 from movieproc import config as mpconfig
@@ -185,9 +186,10 @@ def test_stage_writes_labelled_store(tmp_path):
     scatter.run({"shots": _shots(tmp_path), "structures": []}, out, cfg)
     ds = xr.open_zarr(out, consolidated=False)
     assert ds["traj_dS"].dims == ("frame", "q")
-    assert ds["traj_positions"].dims == ("frame", "atom", "xyz")
+    assert ds["traj_positions"].dims == ("frame", "atom", "axis")
+    assert list(ds["axis"].values) == ["x", "y", "z"]
     assert ds["species_dS"].dims == ("species", "q")
-    assert ds["q"].attrs["units"] == "1/Å" and ds["frame_time"].attrs["units"] == "ps"
+    assert ds["q"].attrs["units"] == "1/angstrom" and ds["frame_time"].attrs["units"] == "ps"
     assert list(ds["element"].values) == ELEMENTS
     assert list(ds["species"].values) == ["excited"]
     np.testing.assert_allclose(ds["frame_time"].values, np.arange(10) * 0.05, atol=1e-12)
@@ -198,8 +200,8 @@ def test_stage_writes_labelled_store(tmp_path):
     sp = D.debye(Q, excited, ELEMENTS) - D.debye(Q, g, ELEMENTS)
     assert np.abs(ds["species_dS"].values[0] - sp).max() < 1e-3 * np.abs(sp).max()
     np.testing.assert_allclose(ds["ground_S"].values, D.debye(Q, g, ELEMENTS), rtol=1e-4)
-    assert ds.attrs["options"]["dr"] == 0.01
-    assert ds.attrs["input_files"]["species"] == {"excited": str(tmp_path / "excited.xyz")}
+    assert yaml.safe_load(ds.attrs["options_yaml"])["dr"] == 0.01
+    assert yaml.safe_load(ds.attrs["input_files_yaml"])["species"] == {"excited": str(tmp_path / "excited.xyz")}
 
 
 def test_stage_without_trajectory_or_species(tmp_path):

@@ -55,7 +55,7 @@ class Binning:
         Accumulator row of each pixel: ``sector * (ng + 1) + floor(t) + 1``;
         left-out pixels point to the last row, which is discarded.
     frac : ndarray (npix,) float64
-        Upper share t - floor(t) of each pixel (0 without splitting).
+        Upper share t - floor(t) of each pixel (0 when each pixel goes wholly to its nearest point).
     valid : ndarray (npix,) bool
         Pixels that enter the sums.
     scale : ndarray (npix,) float64
@@ -172,7 +172,7 @@ def _grid_step(grid: np.ndarray) -> float:
 
 
 def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimuth=None,
-                  sector_edges=None, regressors=(), splitting=True, saturation_level=None) -> Binning:
+                  sector_edges=None, regressors=(), share_between_points=True, saturation_level=None) -> Binning:
     """Precompute the pixel-to-grid layout.
 
     Parameters
@@ -196,7 +196,7 @@ def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimut
     regressors : sequence of array_like (ny, nx)
         Extra per-pixel channels h_1, h_2, ... (e.g. the P2 term of
         :mod:`anisotropy`); their weighted sums and cross moments are kept.
-    splitting : bool
+    share_between_points : bool
         Share each pixel between the two bracketing grid points (default);
         False gives each pixel wholly to the nearest grid point.
     saturation_level : float, optional
@@ -223,7 +223,7 @@ def build_binning(coordinate, grid, *, factor=None, mask=None, dark=None, azimut
     t = (coordinate.ravel() - grid[0]) / step
     valid = np.isfinite(t)
     t = np.where(valid, t, -10.0)
-    if splitting:
+    if share_between_points:
         base = np.floor(t)
         frac = t - base
         valid &= (base >= -1) & (base <= ng - 1)

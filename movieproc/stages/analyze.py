@@ -6,17 +6,20 @@ when structures are configured) and writes ``analysis.zarr``, whose arrays the
 
 - ``solute`` (delay, q): the difference minus the fitted solvent and
   normalization terms;
-- ``solvent_coef``, ``solvent_coef_err`` (delay, term): per-delay coefficients
-  (for ``dT`` in K when the data are on the absolute scale);
-- ``svd_values`` (component), ``svd_u`` (delay, component), ``svd_v``
-  (component, q), ``svd_noise`` (component) and the component count;
-- with a fit: ``model``, ``residual`` (delay, q), ``chi2`` (delay, reduced),
-  ``population`` (delay, species), ``correlation`` (param, param_b), fitted
-  parameters with errors in the attrs;
+- ``solvent_coefficient``, ``solvent_coefficient_error`` (delay, term): per-delay
+  coefficients, the unit of each term in ``term_units`` (``dT`` in K when the data
+  are on the absolute scale);
+- ``svd_values``, ``svd_noise_values``, ``svd_structured`` (component),
+  ``svd_delay_vectors`` (delay, component), ``svd_q_vectors`` (component, q) and
+  the component count (attrs);
+- with a fit: ``model``, ``residual`` (delay, q), ``reduced_chi_squared`` (delay),
+  ``population`` (delay, species), ``fit_value``, ``fit_error``... (fit_parameter),
+  ``fit_correlation`` (correlated_parameter, correlated_parameter_other);
 - with a trajectory: the best-fitting frame per delay, ``positions`` (delay,
-  atom, xyz), ``element`` (atom), and each configured geometric parameter with
-  its lower and upper bound per delay.
+  atom, axis), ``element`` (atom), and ``geometry``, ``geometry_lower``,
+  ``geometry_upper`` (delay, parameter) for the configured geometric parameters.
 
+Every array has ``long_name`` and a pint-parseable ``units`` (strings: none).
 Bins under ``binning.min_shots`` are left out of the fits (their rows are NaN).
 
 Inputs: ``binned`` (store), ``models`` (store, only with ``model.ground``); config
@@ -64,6 +67,8 @@ NETWORK_KEYS = {**CONFIG_KEYS, "rates": "fit.network"}
 REALSPACE_STEP = 0.01
 #: Nuisance terms (not a solvent response): a fit's solute model cannot take their shape.
 NUISANCE_TERMS = ("normalization", "energy")
+#: Units of the solvent coefficients on the absolute scale with differentials per K (others: pure numbers).
+TERM_UNITS = {"dT": "K", "drho": "g/cm^3"}
 #: Fit parameters in ps (the rest are amplitudes).
 TIME_PARAMETERS = ("t0", "sigma", "lifetime", "osc_period", "osc_damping")
 
@@ -79,7 +84,7 @@ class Data:
     q, delay : ndarray, shapes (n_q,), (n_delay,)
         1/Å, ps.
     diff, err : ndarray, shape (n_delay, n_q)
-        Difference and its standard error (``diff_err``), in ``units``.
+        Difference and its standard error (``difference_error``), in ``units``.
     low : ndarray of bool, shape (n_delay,)
         Bins under the shot threshold.
     off_mean : ndarray, shape (n_delay, n_q)
@@ -89,6 +94,9 @@ class Data:
     boot : ndarray, shape (n_rep, n_delay, n_q), or None
         Bootstrap replicates over shots.
     units : str
+        Short label of the differences' units (``display_units``; their ``units`` are "1").
+    units_description : str
+        What a number of the differences means (normalized units).
     models : zarr group or None
         The store of the ``scatter`` stage.
     correlation : ndarray, shape (n_delay, n_delay), or None
@@ -106,6 +114,7 @@ class Data:
     spread: np.ndarray
     boot: np.ndarray | None
     units: str
+    units_description: str
     models: Any
     correlation: np.ndarray | None = None
 
@@ -127,11 +136,12 @@ def read_data(inputs) -> Data:
         mq = store.read(models, "q")
         if mq.shape != q.shape or not np.allclose(mq, q, rtol=1e-9, atol=1e-12):
             raise InputError(f"{models_path}:q", "a q grid different from the data's", f"the q grid of {path}")
-    return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "diff").astype(float),
-                err=store.read(b, "diff_err").astype(float), low=store.read(b, "low_count"),
-                off_mean=store.read(b, "off_mean").astype(float), spread=store.read(b, "delay_spread"),
-                boot=store.read(b, "diff_boot").astype(float) if "diff_boot" in b else None,
-                units=b["diff"].attrs.get("units", ""), models=models,
+    return Data(path=path, q=q, delay=store.read(b, "delay"), diff=store.read(b, "difference").astype(float),
+                err=store.read(b, "difference_error").astype(float), low=store.read(b, "too_few_shots"),
+                off_mean=store.read(b, "pump_off_mean").astype(float), spread=store.read(b, "delay_spread"),
+                boot=store.read(b, "difference_replicates").astype(float) if "difference_replicates" in b else None,
+                units=b["difference"].attrs.get("display_units", ""),
+                units_description=b["difference"].attrs.get("description", ""), models=models,
                 correlation=store.read(b, "delay_correlation").astype(float) if "delay_correlation" in b else None)
 
 
@@ -170,9 +180,11 @@ def analyze(data: Data, config: dict, warnings: Warnings):
         raise DataError(f"no delay bin of {data.path} has enough shots (binning.min_shots) for the analysis")
     basis = _basis(config, data, usable, factor, warnings)
     solute_units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else data.units
+    physical = config["scaling"]["mode"] == "solute" and bool(config["solvent"]["differentials"])
     result = {"names": basis.names, "units": solute_units, "factor": factor,
-              "coef_units": "K (dT), g/cm3 (drho)" if config["scaling"]["mode"] == "solute"
-              and config["solvent"]["differentials"] else "arbitrary"}
+              "units_description": data.units_description,
+              "term_units": [TERM_UNITS.get(n, store.DIMENSIONLESS) if physical else store.DIMENSIONLESS
+                             for n in basis.names]}
     fcfg = config["fit"]
     use = _fit_rows(fcfg, data.delay, usable)
     fit = _global_fit(fcfg, data, use, basis, warnings) if fcfg["mode"] != "none" else None
@@ -268,7 +280,7 @@ def _solute(fcfg, data, use, basis, fit, warnings):
                          "solvent terms is a convention (curves carry no solvent-shaped part), so solvent_coef and "
                          "solute are not determined by the data alone")
         nvalid = np.maximum(np.isfinite(fit.residual).sum(axis=1) - len(names), 1)
-        arrays.update(model=fit.model, residual=fit.residual, chi2=fit.chi2_delay / nvalid,
+        arrays.update(model=fit.model, residual=fit.residual, reduced_chi_squared=fit.chi2_delay / nvalid,
                       population=fit.populations)
         coef, coef_err = fit.solvent_coef, fit.solvent_coef_err
         solute = diff - (coef @ curves if curves is not None else 0.0)
@@ -285,7 +297,7 @@ def _solute(fcfg, data, use, basis, fit, warnings):
         solute = diff
     arrays["solute"] = solute
     if coef is not None:
-        arrays.update(solvent_coef=coef, solvent_coef_err=coef_err)
+        arrays.update(solvent_coefficient=coef, solvent_coefficient_error=coef_err)
     arrays = {k: _rows(v, use) for k, v in arrays.items()}
     return arrays, solute
 
@@ -300,10 +312,11 @@ def _realspace(rcfg, data, solute, use, arrays, units):
     arrays.update(solute_realspace=_rows(values, use), r=r)
     low, high = rcfg["q_range_invA"] or (float(data.q[0]), float(data.q[-1]))
     pairs = "pairs" if units == SCALE_UNITS else f"({units}) / e.u.^2"
-    return {"units": f"{pairs} / Å", "meaning": "change of the number of pairs per Å (gained > 0, lost < 0), an a-b "
-            "pair weighted f_a f_b / F: dP(r) = (r / pi) int q dS(q) / F(q) sin(q r) exp(-kappa q^2) dq",
-            "sharpening": label, "q_range_invA": [low, high], "damping_A2": kappa,
-            "peak_sigma_A": realspace.peak_width(kappa)}
+    return {"display_units": f"{pairs} / Å", "description": "an a-b pair weighted f_a f_b / F: dP(r) = (r / pi) "
+            "int q dS(q) / F(q) sin(q r) exp(-kappa q^2) dq" + ("" if units == SCALE_UNITS else
+                                                                 f"; in ({units}) / e.u.^2 per Å, not pairs"),
+            "sharpening": label, "q_range_invA": [float(low), float(high)], "damping_A2": float(kappa),
+            "peak_sigma_A": float(realspace.peak_width(kappa))}
 
 
 
@@ -319,10 +332,12 @@ def _svd(ncfg, data, solute, usable, use, arrays, warnings):
         warnings.add(w)
     u, s, vt = count.u, count.s, count.vt  # the same weighted map as the count and its noise reference
     k = min(ncfg["max_components"], s.size)
-    arrays.update(svd_values=s[:k], svd_noise=count.s_noise[:k], svd_u=_rows(u[:, :k], use), svd_v=vt[:k])
+    arrays.update(svd_values=s[:k], svd_noise_values=count.s_noise[:k], svd_delay_vectors=_rows(u[:, :k], use),
+                  svd_q_vectors=vt[:k], component=np.arange(1, k + 1),
+                  svd_structured=np.array([bool(b) for b in count.smooth[:k]]))
     log.info("SVD: %s", count.decision)
-    return {"svd_components": int(count.n), "svd_threshold": count.threshold, "svd_decision": count.decision,
-            "svd_noise_source": count.noise_source, "svd_structured": [bool(b) for b in count.smooth[:k]]}
+    return {"svd_components": int(count.n), "svd_threshold": float(count.threshold), "svd_decision": count.decision,
+            "svd_noise_source": count.noise_source}
 
 
 def _rows(values, use):
@@ -428,7 +443,7 @@ def _structures(fcfg, data, use, basis, warnings, amplitude=None):
     """Best trajectory frame per delay, its positions and the configured geometric parameters."""
     models = data.models
     pos = store.read(models, "traj_positions")
-    n_members = len((models.attrs.get("input_files") or {}).get("trajectory", []) or [])
+    n_members = len((store.yaml_value(models.attrs, "input_files_yaml", {}) or {}).get("trajectory", []) or [])
     if n_members > 1:
         warnings.add(f"the model curves average {n_members} trajectories, but positions and geometric parameters "
                      "are those of the first one: read them as indicative")
@@ -443,17 +458,19 @@ def _structures(fcfg, data, use, basis, warnings, amplitude=None):
     for w in ff.warnings:
         warnings.add(w)
     sig = ff.significant
-    out = {"frame": _rows(np.where(sig, ff.best_frame, -1), use), "frame_amplitude": _rows(ff.amplitude, use),
+    out = {"best_frame": _rows(np.where(sig, ff.best_frame, -1), use), "best_frame_amplitude": _rows(ff.amplitude, use),
            "structure_significant": _rows(sig.astype(float), use) == 1.0}
     positions = np.full((use.size,) + pos.shape[1:], np.nan)
     positions[np.flatnonzero(use)[sig]] = pos[ff.best_frame[sig]]
     out["positions"] = positions
     out["element"] = np.array([str(e) for e in models["element"][...]])
-    units = {}
-    for name in params:
-        for kind, values in (("", ff.value[name]), ("_lower", ff.lower[name]), ("_upper", ff.upper[name])):
-            out[f"geometry_{name}{kind}"] = _rows(np.where(sig, values, np.nan), use)
-            units[f"geometry_{name}{kind}"] = "Å" if len(fcfg["geometry"][name]) == 2 else "deg"
+    out["atom"], out["axis"] = np.arange(pos.shape[1]), np.array(["x", "y", "z"])
+    names = list(params)
+    if names:
+        for kind, found in (("geometry", ff.value), ("geometry_lower", ff.lower), ("geometry_upper", ff.upper)):
+            out[kind] = _rows(np.stack([np.where(sig, found[name], np.nan) for name in names], axis=1), use)
+        out["parameter"] = np.array(names)
+    units = {name: store.ANGSTROM if len(fcfg["geometry"][name]) == 2 else store.DEGREE for name in names}
     if ff.at_end.any():
         warnings.add(f"{int(ff.at_end[sig].sum())} delays fit best at the last trajectory frame: "
                      "the trajectory may be too short")
@@ -461,88 +478,176 @@ def _structures(fcfg, data, use, basis, warnings, amplitude=None):
 
 
 DIMS = {
-    "solute": ("delay", "q"), "model": ("delay", "q"), "residual": ("delay", "q"), "chi2": ("delay",),
-    "population": ("delay", "species"), "solvent_coef": ("delay", "term"), "solvent_coef_err": ("delay", "term"),
-    "svd_values": ("component",), "svd_noise": ("component",), "svd_u": ("delay", "component"),
-    "svd_v": ("component", "q"), "frame": ("delay",), "frame_amplitude": ("delay",),
-    "structure_significant": ("delay",), "positions": ("delay", "atom", "xyz"), "element": ("atom",),
-    "r": ("r",), "solute_realspace": ("delay", "r"),
+    "solute": ("delay", "q"), "model": ("delay", "q"), "residual": ("delay", "q"), "reduced_chi_squared": ("delay",),
+    "population": ("delay", "species"), "solvent_coefficient": ("delay", "term"),
+    "solvent_coefficient_error": ("delay", "term"), "component": ("component",), "svd_values": ("component",),
+    "svd_noise_values": ("component",), "svd_structured": ("component",), "svd_delay_vectors": ("delay", "component"),
+    "svd_q_vectors": ("component", "q"), "positions": ("delay", "atom", "axis"), "element": ("atom",),
+    "atom": ("atom",), "axis": ("axis",), "r": ("r",), "solute_realspace": ("delay", "r"),
+    "geometry": ("delay", "parameter"), "geometry_lower": ("delay", "parameter"),
+    "geometry_upper": ("delay", "parameter"), "parameter": ("parameter",),
 }
+#: long_name of each array of the analysis store.
+LONG_NAMES = {
+    "solute": "solute difference: the difference minus the fitted solvent and normalization terms",
+    "model": "fitted model of the difference", "residual": "difference minus model",
+    "reduced_chi_squared": "reduced chi-squared of the fit at each delay",
+    "population": "population of each species (initial excited population 1)",
+    "solvent_coefficient": "coefficient of each solvent or nuisance term per delay",
+    "solvent_coefficient_error": "standard error of solvent_coefficient",
+    "component": "number of the SVD component",
+    "svd_values": "singular values of the weighted solute difference",
+    "svd_noise_values": "singular values of noise maps of the same weighting (the count's threshold)",
+    "svd_structured": "flag: both singular vectors of the component are smooth (lag-1 autocorrelation test)",
+    "svd_delay_vectors": "left singular vectors (along delay) of the weighted solute difference",
+    "svd_q_vectors": "right singular vectors (along q) of the weighted solute difference",
+    "best_frame": "trajectory frame that fits the delay best (-1: no significant structure)",
+    "best_frame_amplitude": "amplitude of the best frame's difference curve",
+    "structure_significant": "flag: the solute signal at this delay determines a structure",
+    "positions": "atom positions of the best-fitting trajectory frame",
+    "element": "chemical element of the atom", "atom": "atom number, as in the structure files (0-based)",
+    "axis": "Cartesian axis", "r": "interatomic distance",
+    "solute_realspace": "change of the number of atom pairs per Å (gained > 0, lost < 0)",
+    "geometry": "geometric parameter of the best-fitting structure (fit.geometry)",
+    "geometry_lower": "lower end of the geometric parameter's interval (fit.delta_chi2)",
+    "geometry_upper": "upper end of the geometric parameter's interval (fit.delta_chi2)",
+    "parameter": "geometric parameter (fit.geometry name)",
+}
+#: What the SVD arrays are computed from (their description).
+SVD_NOTE = ("SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation of "
+            "1 / difference_error (dimensionless); attrs svd_threshold, svd_decision: how the count was made")
+
+
+def _parameter_units(fit, config):
+    """Unit of each fitted parameter (pint strings) and what the amplitudes' unit means."""
+    units = {k: store.PS if k in TIME_PARAMETERS or k.startswith("lifetime_") else store.DIMENSIONLESS
+             for k in fit.params}
+    units.update({k: store.DIMENSIONLESS for k in fit.amplitudes})
+    absolute = config["scaling"]["mode"] == "solute"
+    note = ("amplitudes: fraction of solute molecules (absolute scale)" if absolute
+            else "amplitudes: factors of the model curves (model units)")
+    return units, note
+
+
+def _fit_arrays(g, fit, config):
+    """The fitted parameters with their errors, over a ``fit_parameter`` coordinate, and their correlation."""
+    units, note = _parameter_units(fit, config)
+    names = list(fit.params) + list(fit.amplitudes)
+    value = {**fit.params, **fit.amplitudes}
+    error = {**fit.stderr, **fit.amplitudes_err}
+    independent = {**fit.stderr_independent, **fit.amplitudes_err_independent}
+    boot = {k: info.error for k, info in fit.bootstrap.items()}
+    unit, described = _common_units([units[k] for k in names], "fit_parameter_units")
+    columns = (("fit_value", value, "fitted value"),
+               ("fit_error", error, f"standard error ({fit.error_model})"),
+               ("fit_error_independent_bins", independent, "standard error with the delay bins taken as independent"),
+               ("fit_bootstrap_error", boot, "bootstrap standard error (NaN: no bootstrap)"))
+    store.write_array(g, "fit_parameter", np.array(names), ["fit_parameter"], long_name="fitted parameter")
+    store.write_array(g, "fit_parameter_units", np.array([units[k] for k in names]), ["fit_parameter"],
+                      long_name="unit of each fitted parameter", attrs={"description": note})
+    for var, table, long_name in columns:
+        store.write_array(g, var, np.array([float(table.get(k, np.nan)) for k in names]), ["fit_parameter"],
+                          units=unit, long_name=long_name, attrs={"description": described + "; " + note})
+    store.write_array(g, "fit_bootstrap", np.array([f"{fit.bootstrap[k].replicates} replicates over "
+                                                     f"{fit.bootstrap[k].over}" if k in fit.bootstrap else ""
+                                                     for k in names]), ["fit_parameter"],
+                      long_name="bootstrap behind fit_bootstrap_error (empty: none)")
+    store.write_array(g, "fit_at_bound", np.array([k in fit.at_bound for k in names]), ["fit_parameter"],
+                      units=store.DIMENSIONLESS, long_name="flag: the parameter ended at a bound of the fit")
+    store.write_array(g, "correlated_parameter", np.array(fit.corr_names), ["correlated_parameter"],
+                      long_name="parameter of the fit's correlation matrix")
+    store.write_array(g, "correlated_parameter_other", np.array(fit.corr_names), ["correlated_parameter_other"],
+                      long_name="parameter of the fit's correlation matrix (second axis)")
+    store.write_array(g, "fit_correlation", fit.correlation, ["correlated_parameter", "correlated_parameter_other"],
+                      units=store.DIMENSIONLESS, long_name="correlation between the fitted parameters")
+
+
+def _common_units(units, coordinate):
+    """A variable's units over a labelled axis: the entries' common unit, or "1" with a pointer to their units."""
+    if len(set(units)) == 1:
+        return units[0], f"unit {units[0]} for every entry"
+    return store.DIMENSIONLESS, (f"entries in different units: each value is a number of the unit that "
+                                 f"{coordinate} gives for its entry")
 
 
 def _fit_attrs(fit, config):
-    """Attributes of a fit: parameters with errors (and bootstrap errors), chi2, flags."""
-    params = {k: {"value": float(v), "error": float(fit.stderr.get(k, np.nan)),
-                  "error_independent_bins": float(fit.stderr_independent.get(k, np.nan)),
-                  "units": "ps" if k in TIME_PARAMETERS or k.startswith("lifetime_") else ""}
-              for k, v in fit.params.items()}
-    for k, v in fit.amplitudes.items():
-        params[k] = {"value": float(v), "error": float(fit.amplitudes_err.get(k, np.nan)),
-                     "error_independent_bins": float(fit.amplitudes_err_independent.get(k, np.nan)),
-                     "units": "1" if config["scaling"]["mode"] == "solute" else "model units"}
-    for k, info in fit.bootstrap.items():
-        params[k]["bootstrap_error"] = info.error
-        params[k]["bootstrap"] = f"{info.replicates} replicates over {info.over}"
-    return {"fit_mode": config["fit"]["mode"], "fit_parameters": params, "fit_reduced_chi2": float(fit.red_chi2),
-            "fit_converged": bool(fit.converged), "fit_at_bound": list(fit.at_bound),
-            "fit_species": list(fit.species_names), "fit_correlation_names": list(fit.corr_names),
-            "fit_errors": _error_note(fit)}
+    """Scalar attributes of a fit (netCDF-safe): mode, reduced chi2, convergence, what the errors assume."""
+    note = _error_note(fit)
+    return {"fit_mode": config["fit"]["mode"], "fit_reduced_chi2": float(fit.red_chi2),
+            "fit_converged": int(bool(fit.converged)), "fit_error_model": note["model"],
+            "fit_error_assumptions": note["assumes"], "fit_error_scale": note["scale_reduced_chi2"]}
 
 
 def _error_note(fit):
-    """What the reported errors assume (attrs ``fit_errors``)."""
+    """What the reported errors assume (attrs ``fit_error_model``, ``fit_error_assumptions``, ``fit_error_scale``)."""
     if fit.error_model == "correlated bins":
         assumes = ("standard errors of an ordinary weighted fit under differences correlated between delay bins "
-                   "(shared pump-off references): Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc with R the "
-                   "binned store's delay_correlation, no correlation between q points; sandwich covariance scaled by "
-                   "chi2 over its expectation under R; linearized (asymptotic)")
+                   "(shared pump-off references): Cov(D_b(q), D_c(q)) = difference_error_b(q) "
+                   "difference_error_c(q) R_bc with R the binned store's delay_correlation, no correlation "
+                   "between q points; sandwich covariance scaled by chi2 over its expectation under R; "
+                   "linearized (asymptotic)")
     else:
         assumes = ("standard errors assuming independent delay bins (no delay_correlation in the binned store), "
                    "scaled by the reduced chi2; too small where neighbouring bins share pump-off references; "
                    "linearized (asymptotic)")
-    return {"model": fit.error_model, "assumes": assumes, "scale_reduced_chi2": float(fit.error_scale),
-            "error_independent_bins": "the same errors with the bins taken as independent (per-bin errors only)"}
+    return {"model": fit.error_model, "assumes": assumes, "scale_reduced_chi2": float(fit.error_scale)}
 
 
 def _array_attrs(name, result):
-    """Units and meaning of an array of the analysis store."""
-    units = result["units"]
-    u = {"solute": units, "model": units, "residual": units, "positions": "Å", "chi2": "1 (reduced)",
-         "svd_v": "1", "svd_u": "1", "svd_values": "1", "svd_noise": "1", "r": "Å",
-         "solute_realspace": (result.get("realspace") or {}).get("units"), "population": "1", "frame_amplitude": "1",
-         "solvent_coef": result["coef_units"], "solvent_coef_err": result["coef_units"]}.get(name)
-    if name.startswith("geometry_"):
-        u = result["geometry_units"][name]
-    meaning = None
-    if name == "solute_realspace":
-        meaning = {k: v for k, v in result["realspace"].items() if k != "units"}
-    elif name in ("solvent_coef", "solvent_coef_err"):
-        meaning = {"terms": result["names"],
-                   "meaning": "per-delay coefficient of each term (dT in K only on the absolute scale "
-                              "with differentials per K; normalization: dimensionless nuisance)"}
-    elif name.startswith("svd_"):
-        meaning = {"meaning": "SVD of the solute difference weighted by 1 / (e_t e_q), the separable approximation "
-                              "of 1 / diff_err (dimensionless); svd_noise: noise maps of the same weighting; "
-                              "attrs svd_threshold, svd_structured, svd_decision: how the count was made"}
-    return u, meaning
+    """units, long_name and further attributes of an array of the analysis store."""
+    analysis = {"display_units": result["units"],
+                "description": store.ELECTRON_UNITS + " per solute molecule" if result["units"] == SCALE_UNITS
+                else result.get("units_description", "")}
+    table = {"solute": analysis, "model": analysis, "residual": analysis,
+             "solute_realspace": {k: v for k, v in (result.get("realspace") or {}).items()},
+             "svd_values": {"description": SVD_NOTE}, "svd_noise_values": {"description": SVD_NOTE},
+             "svd_delay_vectors": {"description": SVD_NOTE}, "svd_q_vectors": {"description": SVD_NOTE}}
+    extra = dict(table.get(name, {}))
+    units: str | None = store.DIMENSIONLESS
+    if name in ("positions", "r"):
+        units = store.ANGSTROM
+    elif name == "solute_realspace":
+        units = "1/angstrom"
+    elif name in ("solvent_coefficient", "solvent_coefficient_error"):
+        units, extra["description"] = _common_units(result["term_units"], "term_units")
+    elif name.startswith("geometry"):
+        units, extra["description"] = _common_units(list(result["geometry_units"].values()), "parameter_units")
+    elif name in ("element", "axis", "parameter"):
+        units = None
+    return units, LONG_NAMES.get(name, name), extra
 
 
 def _write(out, q, delay, arrays, result, config, warnings):
     fit = result.get("fit")
     attrs = {"written": now(), "analysis_units": result["units"], "absolute_scale_factor": result["factor"],
-             "solvent_terms": result["names"], "warnings": list(warnings), **result["svd_count"]}
+             "warnings": store.lines_text(warnings), **result["svd_count"]}
     if fit is not None:
         attrs.update(_fit_attrs(fit, config))
     with store.atomic_path(out) as tmp:
         g = store.new_group(tmp, attrs)
-        store.write_array(g, "q", q, ["q"], units="1/Å")
-        store.write_array(g, "delay", delay, ["delay"], units="ps")
+        store.write_array(g, "q", q, ["q"], units=store.INVERSE_ANGSTROM,
+                          long_name="momentum transfer q = 4 pi sin(theta) / lambda")
+        store.write_array(g, "delay", delay, ["delay"], units=store.PS,
+                          long_name="pump-probe delay: mean corrected delay of the bin's pump-on shots")
         for name, values in arrays.items():
-            units, extra = _array_attrs(name, result)
-            store.write_array(g, name, values, DIMS.get(name, ("delay",)), units=units, attrs=extra)
-        if result["names"]:
-            store.write_array(g, "term", np.array(result["names"]), ["term"])
+            units, long_name, extra = _array_attrs(name, result)
+            store.write_array(g, name, values, DIMS.get(name, ("delay",)), units=units, long_name=long_name,
+                              attrs=extra)
+        _labels(g, result)
         if fit is not None:
-            store.write_array(g, "correlation", fit.correlation, ["param", "param_b"],
-                              attrs={"names": list(fit.corr_names)})
-            store.write_array(g, "species", np.array(fit.species_names), ["species"])
+            _fit_arrays(g, fit, config)
+            store.write_array(g, "species", np.array(fit.species_names), ["species"], long_name="species of the fit")
+
+
+def _labels(g, result):
+    """The term and geometric-parameter coordinates with the unit of each entry."""
+    if result["names"]:
+        store.write_array(g, "term", np.array(result["names"]), ["term"],
+                          long_name="solvent or nuisance term fitted per delay")
+        store.write_array(g, "term_units", np.array(result["term_units"]), ["term"],
+                          long_name="unit of each term's coefficient",
+                          attrs={"description": "dT in K and drho in g/cm^3 only on the absolute scale with "
+                                                "differentials per K; otherwise (and normalization) pure numbers"})
+    if result.get("geometry_units"):
+        store.write_array(g, "parameter_units", np.array(list(result["geometry_units"].values())), ["parameter"],
+                          long_name="unit of each geometric parameter")

@@ -69,10 +69,24 @@ def run(inputs: dict, out: Path, config: dict) -> None:
                      f"(< binning.min_shots = {binning['min_shots']}); its difference is flagged")
     centre = 0.5 * (edges[1:] + edges[:-1])
     with store.atomic_path(out) as tmp:
-        g = store.new_group(tmp, {"binning": binning, "n_nan": bins.n_nan, "n_outside": bins.n_outside,
-                                  "written": now(), "warnings": list(warnings)})
-        store.write_array(g, "edges", edges, ["edge"], units="ps")
-        store.write_array(g, "index", index, ["shot"])
-        store.write_array(g, "n_shots", bins.count, ["bin"])
-        store.write_array(g, "delay_mean", np.where(bins.count > 0, bins.mean, centre), ["bin"], units="ps")
-        store.write_array(g, "delay_spread", bins.std, ["bin"], units="ps")
+        g = store.new_group(tmp, {"config_yaml": store.yaml_text({"binning": binning}), "n_nan": bins.n_nan,
+                                  "n_outside": bins.n_outside, "written": now(),
+                                  "warnings": store.lines_text(warnings)})
+        _write(g, edges, index, bins, centre)
+
+
+def _write(g, edges, index, bins, centre):
+    """The arrays of the bins store."""
+    store.write_array(g, "edges", edges, ["edge"], units=store.PS, long_name="edges of the delay bins")
+    store.write_array(g, "index", index, ["shot"], units=store.DIMENSIONLESS,
+                      long_name="delay bin of each shot (-1: pump-off, dropped, no delay or outside the bins)")
+    store.write_array(g, "edge", np.arange(edges.size), ["edge"], units=store.DIMENSIONLESS,
+                      long_name="number of the bin edge")
+    store.write_array(g, "bin", np.arange(edges.size - 1), ["bin"], units=store.DIMENSIONLESS,
+                      long_name="number of the delay bin")
+    store.write_array(g, "n_shots", bins.count, ["bin"], units=store.DIMENSIONLESS,
+                      long_name="pump-on shots in the bin")
+    store.write_array(g, "delay_mean", np.where(bins.count > 0, bins.mean, centre), ["bin"], units=store.PS,
+                      long_name="mean corrected delay of the bin's pump-on shots (bin centre where empty)")
+    store.write_array(g, "delay_spread", bins.std, ["bin"], units=store.PS,
+                      long_name="standard deviation of the corrected delays of the bin's pump-on shots")

@@ -35,9 +35,15 @@ log = logging.getLogger("movieproc.difference")
 CONFIG_KEYS = {"k": "differences.references", "mode": "differences.normalization",
                "q_range": "differences.norm_q_range", "n_boot": "differences.bootstrap",
                "chunk": "compute.chunk_shots", "scheduler": "compute.scheduler"}
-#: Units of the differences per normalization mode.
-UNITS = {"window": "fraction of the normalization-window mean", "total": "fraction of the mean over q",
-         "none": "detector units"}
+#: What a number of the differences means, per normalization mode (their units are "1").
+NORMALIZED_UNITS = {
+    "window": ("normalized units: each shot's curve divided by its mean over the normalization q window "
+               "(differences.norm_q_range), so 1 is that mean"),
+    "total": "normalized units: each shot's curve divided by its mean over all q, so 1 is that mean",
+    "none": "detector units (arbitrary): curves not normalized",
+}
+#: Short labels of those units for figures.
+DISPLAY_UNITS = {"window": "normalized units", "total": "normalized units", "none": "detector units"}
 
 
 def _chunk_sums(start, stop, shots, on_idx, refs, on_bin, nbins, differences, weights):
@@ -82,7 +88,7 @@ def _references(shots, keep, index, differences, warnings):
 
 
 def run(inputs: dict, out: Path, config: dict) -> None:
-    """Write ``binned.zarr``: diff, diff_err, on_mean, off_mean per (delay, q), delay_correlation.
+    """Write ``binned.zarr``: difference, difference_error, pump_on_mean, pump_off_mean per (delay, q), and more.
 
     Parameters
     ----------
@@ -120,43 +126,67 @@ def run(inputs: dict, out: Path, config: dict) -> None:
              nbins, int(count.sum()), k,
              float(np.nanmedian(difference_error)) if np.isfinite(difference_error).any() else float("nan"))
     with store.atomic_path(out) as tmp:
-        g = store.new_group(tmp, {"differences": differences, "binning": bins.attrs.get("binning"), "written": now(),
-                                  "warnings": list(bins.attrs.get("warnings", [])) + list(warnings),
-                                  "references_per_shot": k})
+        g = store.new_group(tmp, {"config_yaml": store.yaml_text({"differences": differences,
+                                                                  "binning": config["binning"]}),
+                                  "written": now(), "references_per_shot": k,
+                                  "warnings": store.lines_text(store.text_list(bins.attrs, "warnings")
+                                                               + list(warnings))})
         _write(g, shots.q, bins, edges, shared, sums, difference_error, config["binning"]["min_shots"], differences)
         _write_covariance(g, correlation, boot, differences)
 
 
 def _write(g, q, bins, edges, shared, sums, difference_error, min_shots, differences):
     """The arrays of the binned store."""
-    units = UNITS[differences["normalization"]]
     count = sums.difference.count
-    store.write_array(g, "q", q, ["q"], units="1/Å")
-    store.write_array(g, "delay", store.read(bins, "delay_mean"), ["delay"], units="ps",
-                      attrs={"meaning": "mean corrected delay of the bin's pump-on shots (bin centre if empty)"})
-    store.write_array(g, "delay_edges", edges, ["edge"], units="ps")
-    store.write_array(g, "delay_spread", store.read(bins, "delay_spread"), ["delay"], units="ps")
-    store.write_array(g, "n_shots", count, ["delay"], attrs={"meaning": "pump-on shots in the bin"})
-    store.write_array(g, "low_count", count < min_shots, ["delay"],
-                      attrs={"meaning": f"fewer than binning.min_shots = {min_shots} shots"})
-    store.write_array(g, "reference_sharing", shared, ["delay"],
-                      attrs={"meaning": "n * sum of squared reference weights; 1/k when no reference is shared"})
-    store.write_array(g, "diff", sums.difference.mean().astype(np.float32), ["delay", "q"], units=units)
-    store.write_array(g, "diff_err", difference_error.astype(np.float32), ["delay", "q"], units=units,
-                      attrs={"meaning": "standard error of diff, accounting for references shared within the bin"})
-    store.write_array(g, "on_mean", sums.on.mean().astype(np.float32), ["delay", "q"], units=units)
-    store.write_array(g, "off_mean", sums.reference.mean().astype(np.float32), ["delay", "q"], units=units)
+    delay = store.read(bins, "delay_mean")
+    store.write_array(g, "q", q, ["q"], units=store.INVERSE_ANGSTROM,
+                      long_name="momentum transfer q = 4 pi sin(theta) / lambda")
+    store.write_array(g, "delay", delay, ["delay"], units=store.PS,
+                      long_name="pump-probe delay: mean corrected delay of the bin's pump-on shots",
+                      attrs={"bounds": "delay_bounds", "description": "positive: probe after pump; the bin centre "
+                             "where the bin is empty"})
+    store.write_array(g, "bound", np.array(["lower", "upper"]), ["bound"], long_name="side of a bin")
+    # a CF boundary variable takes its units from delay (CF conventions 7.1): none of its own
+    store.write_array(g, "delay_bounds", np.stack([edges[:-1], edges[1:]], axis=1), ["delay", "bound"],
+                      long_name="edges of the delay bin (lower, upper), in the units of delay")
+    store.write_array(g, "delay_other", delay, ["delay_other"], units=store.PS,
+                      long_name="pump-probe delay of the other bin (second axis of delay_correlation)")
+    store.write_array(g, "delay_spread", store.read(bins, "delay_spread"), ["delay"], units=store.PS,
+                      long_name="standard deviation of the corrected delays of the bin's pump-on shots")
+    store.write_array(g, "shot_count", count, ["delay"], units=store.DIMENSIONLESS,
+                      long_name="pump-on shots in the bin")
+    store.write_array(g, "too_few_shots", count < min_shots, ["delay"], units=store.DIMENSIONLESS,
+                      long_name=f"flag: fewer than binning.min_shots = {min_shots} shots in the bin")
+    store.write_array(g, "reference_sharing", shared, ["delay"], units=store.DIMENSIONLESS,
+                      long_name="n times the sum of squared reference weights; 1/k when no reference is shared")
+    labels = _units_attrs(differences)
+    for name, values, long_name in (
+            ("difference", sums.difference.mean(), "pump-on minus pump-off difference, bin mean"),
+            ("difference_error", difference_error, "standard error of difference, accounting for pump-off "
+                                                   "references shared within the bin"),
+            ("pump_on_mean", sums.on.mean(), "mean pump-on curve of the bin"),
+            ("pump_off_mean", sums.reference.mean(), "mean pump-off reference curve of the bin")):
+        store.write_array(g, name, values.astype(np.float32), ["delay", "q"], units=store.DIMENSIONLESS,
+                          long_name=long_name, attrs=labels)
+
+
+def _units_attrs(differences):
+    """description and display_units of arrays in the differences' (normalized) units."""
+    mode = differences["normalization"]
+    return {"description": NORMALIZED_UNITS[mode], "display_units": DISPLAY_UNITS[mode]}
 
 
 def _write_covariance(g, correlation, boot, differences):
     """The between-bin correlation and, when asked, the bootstrap replicates."""
-    store.write_array(g, "delay_correlation", correlation, ["delay", "delay_other"], units="1",
-                      attrs={"meaning": "correlation between bins' differences caused by shared pump-off "
-                                        "references; Cov(D_b(q), D_c(q)) = diff_err_b(q) diff_err_c(q) R_bc"})
+    store.write_array(g, "delay_correlation", correlation, ["delay", "delay_other"], units=store.DIMENSIONLESS,
+                      long_name="correlation between bins' differences caused by shared pump-off references",
+                      attrs={"description": "Cov(D_b(q), D_c(q)) = difference_error_b(q) difference_error_c(q) R_bc"})
     if boot is not None:
         replicates = covariance.bootstrap_replicates(boot)
-        store.write_array(g, "diff_boot", replicates.astype(np.float32), ["replicate", "delay", "q"],
-                          units=UNITS[differences["normalization"]],
-                          attrs={"meaning": "diff of Poisson-bootstrap replicates over shots (pump-on and "
-                                            "pump-off shots reweighted; ratio estimator per bin)",
-                                 "seed": differences["seed"]})
+        store.write_array(g, "replicate", np.arange(replicates.shape[0]), ["replicate"], units=store.DIMENSIONLESS,
+                          long_name="number of the bootstrap replicate")
+        store.write_array(g, "difference_replicates", replicates.astype(np.float32), ["replicate", "delay", "q"],
+                          units=store.DIMENSIONLESS,
+                          long_name="difference of Poisson-bootstrap replicates over shots (pump-on and pump-off "
+                                    "shots reweighted; ratio estimator per bin)",
+                          attrs={**_units_attrs(differences), "seed": differences["seed"]})

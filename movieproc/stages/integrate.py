@@ -223,7 +223,7 @@ def _binning(detector, geo, grid, e_ref, mask, dark):
         edges, azimuth, centres = curves.sector_layout(phi, sectors)
     binning = integration.build_binning(geometry.q_map(geo, e_ref), grid, factor=factor, mask=mask, dark=dark,
                                         azimuth=azimuth, sector_edges=edges, regressors=regressors,
-                                        splitting=detector["pixel_splitting"],
+                                        share_between_points=detector["share_pixels_between_q_points"],
                                         saturation_level=detector["saturation_level"])
     return binning, factor, centres
 

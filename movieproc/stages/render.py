@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from .. import progress
+from ..io import movie as movie_attrs
 from ..io import store
 from ..render import figures, kinetics, report, style, timing
 from ..warning_groups import summary_lines
@@ -31,7 +32,15 @@ NAMES = {
     "difference": ("difference", "diff"),
     "difference_error": ("difference_error", "diff_err"),
     "bounds": ("delay_bounds", "delay_edges"),
-    "solvent_coef_error": ("solvent_coef_error", "solvent_coef_err"),
+    "solvent_coef": ("solvent_coefficient", "solvent_coef"),
+    "solvent_coef_error": ("solvent_coefficient_error", "solvent_coef_error", "solvent_coef_err"),
+    "chi2": ("reduced_chi_squared", "chi2"),
+    "svd_noise": ("svd_noise_values", "svd_noise"),
+    "svd_u": ("svd_delay_vectors", "svd_u"),
+    "svd_v": ("svd_q_vectors", "svd_v"),
+    "correlation": ("fit_correlation", "correlation"),
+    "n_shots": ("shot_count", "n_shots"),
+    "low_count": ("too_few_shots", "low_count"),
 }
 #: Figures every run writes (more are added when the movie holds fit results).
 BASIC = ("difference_map", "difference_curves", "timing")
@@ -100,13 +109,13 @@ def read_movie(path) -> Movie:
         from ..errors import InputError
 
         raise InputError(path, "no difference or its error", "a movie written by movieproc (movieproc run)")
-    attrs = {k: _attr_value(v) for k, v in m.attrs.items()}
+    attrs = {k: _attr_value(v) for k, v in movie_attrs.readable_attrs(m).items()}
     arrays = {role: _read(m, role) for role in (
         "model", "residual", "population", "solvent_coef", "solvent_coef_error", "chi2", "svd_values", "svd_noise",
         "svd_u", "svd_v", "r", "solute_realspace", "positions", "delay_spread", "correlation") if _name(m, role)}
     movie = Movie(Path(path), store.read(m, "q"), delay, figures.bin_edges(delay, _read(m, "bounds")),
-                  store.read(m, diff_name), _read(m, "difference_error"), m[diff_name].attrs.get("units", ""),
-                  store.read(m, "n_shots"), np.asarray(store.read(m, "low_count"), bool), attrs, arrays)
+                  store.read(m, diff_name), _read(m, "difference_error"), movie_attrs.display_units(m[diff_name]),
+                  _read(m, "n_shots"), np.asarray(_read(m, "low_count"), bool), attrs, arrays)
     movie.coords = {k: [str(v) for v in m[k][...]] for k in ("term", "element", "parameter") if k in m}
     for role in ("solvent_coef", "solute_realspace"):
         if role in arrays:
@@ -122,7 +131,8 @@ def _read_geometry(m) -> dict:
         names = [str(v) for v in m["parameter"][...]]
         val = store.read(m, "geometry")
         unit = m["geometry"].attrs.get("units", "")
-        units = unit if isinstance(unit, list) else [unit] * len(names)
+        units = ([str(u) for u in m["parameter_units"][...]] if "parameter_units" in m
+                 else unit if isinstance(unit, list) else [unit] * len(names))
         lo = store.read(m, "geometry_lower") if "geometry_lower" in m else np.full_like(val, np.nan)
         hi = store.read(m, "geometry_upper") if "geometry_upper" in m else np.full_like(val, np.nan)
         return {n: (val[:, j], lo[:, j], hi[:, j], units[j]) for j, n in enumerate(names)}
@@ -267,8 +277,9 @@ def _analysis_figures(movie: Movie, figs: _Figures, name, err, rcfg):
     if "solute_realspace" in arr:
         info = a.get("solute_realspace_attrs", {})
         figs.save(figures.realspace(arr["r"], delay, arr["solute_realspace"], rcfg["delays_ps"],
-                                    title=f"{name}: real-space difference (solute)", units=info.get("units", ""),
-                                    info=info), "realspace", info.get("meaning", "Real-space difference."))
+                                    title=f"{name}: real-space difference (solute)",
+                                    units=info.get("display_units") or info.get("units", ""), info=info),
+                  "realspace", info.get("long_name") or info.get("meaning", "Real-space difference."))
 
 
 def _kinetics_figure(movie: Movie, figs: _Figures, name):
@@ -281,7 +292,8 @@ def _kinetics_figure(movie: Movie, figs: _Figures, name):
     note = "" if curves is not None else f"no fit configured (fit.mode: {mode}): no populations drawn"
     if curves is not None and text:
         text = "fitted (± 1 standard error)\n" + text
-    coef_units = a.get("solvent_coef_attrs", {}).get("units", "")
+    coef_units = movie_attrs.term_units_label(store.open_group(movie.path, "movie")) or a.get(
+        "solvent_coef_attrs", {}).get("units", "")
     figs.save(figures.kinetics(movie.delay, curves, arr.get("solvent_coef"), arr.get("solvent_coef_error"),
                                movie.coords.get("term", []), arr.get("chi2"), text, title=f"{name}: kinetics",
                                coef_units=coef_units, note=note),

@@ -9,11 +9,11 @@ array               dims                  units     content
 ==================  ====================  ========  ==========================================
 ``q``               (q,)                  1/Å       the q grid
 ``ground_S``        (q,)                  e.u.^2    S(q) of the ground state
-``ground_positions`` (atom, xyz)          Å         ground-state structure
+``ground_positions`` (atom, axis)         Å         ground-state structure
 ``element``         (atom,)               -         element symbol per atom
 ``frame_time``      (frame,)              ps        frame times (NaN where the files give none)
 ``traj_dS``         (frame, q)            e.u.^2    ensemble mean of S(frame) - S(ground)
-``traj_positions``  (frame, atom, xyz)    Å         positions of the first ensemble member
+``traj_positions``  (frame, atom, axis)   Å         positions of the first ensemble member
 ``species``         (species,)            -         species names
 ``species_dS``      (species, q)          e.u.^2    S(species) - S(ground)
 ==================  ====================  ========  ==========================================
@@ -74,17 +74,18 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         curves = model_curves(q, m["ground"], m["trajectory"], m["species"], options, warnings)
     attrs = {
         "stage": "scatter",
-        "options": options,
-        "input_files": {"ground": str(m["ground"]), "trajectory": [str(p) for p in m["trajectory"]],
-                        "species": {str(k): str(v) for k, v in m["species"].items()}},
+        "options_yaml": store.yaml_text(options),
+        "input_files_yaml": store.yaml_text({"ground": str(m["ground"]),
+                                             "trajectory": [str(p) for p in m["trajectory"]],
+                                             "species": {str(k): str(v) for k, v in m["species"].items()}}),
         "method": ("Debye equation through element-pair distance histograms with linear sharing "
                    f"(dr = {options['dr']} Å); Waasmaier-Kirfel f0 from periodictable"
                    + ("; Henke f', f''" if options["anomalous"] else "")
                    + ("; dummy-atom excluded volume" if options["excluded_volume"] is not None else "")),
         "traj_positions": "first member of the trajectory ensemble",
-        "versions": versions(),
+        "software_versions": store.yaml_text(versions()),
         "written": now(),
-        "warnings": list(warnings),
+        "warnings": store.lines_text(warnings),
     }
     _write(out, q, curves, attrs)
 
@@ -144,19 +145,39 @@ def _trajectory(q, ground, elements, ground_pos, trajectory, options, warnings):
     return {"traj_dS": traj_dS, "traj_positions": ens.positions[0], "frame_time": frame_time}
 
 
+#: What the curves' numbers mean (their units are "1").
+SQUARED_ELECTRON_UNITS = "e.u.^2: " + store.ELECTRON_UNITS + ", squared (a scattered intensity)"
+
+
 def _write(out, q, curves, attrs):
     text = np.dtypes.StringDType()
+    eu2 = {"description": SQUARED_ELECTRON_UNITS, "display_units": "e.u.^2"}
+    n_atoms = len(curves["element"])
     with store.atomic_path(out) as tmp:
         group = store.new_group(tmp, attrs)
-        store.write_array(group, "q", q, ["q"], units="1/Å")
-        store.write_array(group, "ground_S", curves["ground_S"], ["q"], units="e.u.^2")
-        store.write_array(group, "ground_positions", curves["ground_positions"], ["atom", "xyz"], units="Å")
-        store.write_array(group, "element", np.array(curves["element"], dtype=text), ["atom"])
-        store.write_array(group, "frame_time", curves["frame_time"], ["frame"], units="ps")
-        store.write_array(group, "traj_dS", curves["traj_dS"], ["frame", "q"], units="e.u.^2")
-        store.write_array(group, "traj_positions", curves["traj_positions"], ["frame", "atom", "xyz"], units="Å")
-        store.write_array(group, "species", np.array(curves["species"], dtype=text), ["species"])
-        store.write_array(group, "species_dS", curves["species_dS"], ["species", "q"], units="e.u.^2")
+        store.write_array(group, "q", q, ["q"], units=store.INVERSE_ANGSTROM,
+                          long_name="momentum transfer q = 4 pi sin(theta) / lambda")
+        store.write_array(group, "atom", np.arange(n_atoms), ["atom"], units=store.DIMENSIONLESS,
+                          long_name="atom number, as in the structure files (0-based)")
+        store.write_array(group, "axis", np.array(["x", "y", "z"], dtype=text), ["axis"], long_name="Cartesian axis")
+        store.write_array(group, "frame", np.arange(curves["traj_dS"].shape[0]), ["frame"], units=store.DIMENSIONLESS,
+                          long_name="trajectory frame number")
+        store.write_array(group, "ground_S", curves["ground_S"], ["q"], units=store.DIMENSIONLESS,
+                          long_name="scattering S(q) of the ground-state structure", attrs=eu2)
+        store.write_array(group, "ground_positions", curves["ground_positions"], ["atom", "axis"],
+                          units=store.ANGSTROM, long_name="ground-state atom positions")
+        store.write_array(group, "element", np.array(curves["element"], dtype=text), ["atom"],
+                          long_name="chemical element of the atom")
+        store.write_array(group, "frame_time", curves["frame_time"], ["frame"], units=store.PS,
+                          long_name="time of the trajectory frame (NaN where the files give none)")
+        store.write_array(group, "traj_dS", curves["traj_dS"], ["frame", "q"], units=store.DIMENSIONLESS,
+                          long_name="ensemble mean of S(frame) - S(ground)", attrs=eu2)
+        store.write_array(group, "traj_positions", curves["traj_positions"], ["frame", "atom", "axis"],
+                          units=store.ANGSTROM, long_name="atom positions of the first ensemble member")
+        store.write_array(group, "species", np.array(curves["species"], dtype=text), ["species"],
+                          long_name="species structure (model.species name)")
+        store.write_array(group, "species_dS", curves["species_dS"], ["species", "q"], units=store.DIMENSIONLESS,
+                          long_name="S(species) - S(ground)", attrs=eu2)
     log.info("scatter store written to %s", out)
 
 
