@@ -64,15 +64,27 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         warnings.add(f"{bins.n_outside} kept pump-on shots lie outside the bin edges "
                      f"[{edges[0]:.4g}, {edges[-1]:.4g}] ps and are not binned")
     low = np.flatnonzero(bins.count < binning["min_shots"])
-    for b in low:
-        warnings.add(f"bin {b} [{edges[b]:.4g}, {edges[b + 1]:.4g}) ps has {bins.count[b]} pump-on shots "
-                     f"(< binning.min_shots = {binning['min_shots']}); its difference is flagged")
+    if low.size:
+        warnings.add(f"{low.size} of {bins.count.size} bins have fewer than binning.min_shots = "
+                     f"{binning['min_shots']} pump-on shots; their differences are flagged (too_few_shots): "
+                     + _list_bins(low, edges, bins.count))
     centre = 0.5 * (edges[1:] + edges[:-1])
     with store.atomic_path(out) as tmp:
         g = store.new_group(tmp, {"config_yaml": store.yaml_text({"binning": binning}), "n_nan": bins.n_nan,
                                   "n_outside": bins.n_outside, "written": now(),
                                   "warnings": store.lines_text(warnings)})
         _write(g, edges, index, bins, centre)
+
+
+#: Bins named one by one in the too-few-shots warning before it says how many more.
+NAMED_BINS = 8
+
+
+def _list_bins(low, edges, count) -> str:
+    """``bin 3 [0.1, 0.2) ps: 4 shots; ...`` for the first NAMED_BINS bins of ``low``, then how many more."""
+    named = "; ".join(f"bin {b} [{edges[b]:.4g}, {edges[b + 1]:.4g}) ps: {count[b]} shots" for b in low[:NAMED_BINS])
+    return named + (f"; and {low.size - NAMED_BINS} more (see too_few_shots in the movie)"
+                    if low.size > NAMED_BINS else "")
 
 
 def _write(g, edges, index, bins, centre):
