@@ -21,6 +21,8 @@ from types import SimpleNamespace
 import pytest
 import zarr
 
+from movieproc.io import movie as movie_attrs
+
 pytestmark = [pytest.mark.slow, pytest.mark.xdist_group("package")]
 
 REPO = Path(__file__).resolve().parents[1]
@@ -126,7 +128,8 @@ def test_installed_demo_runs_in_an_empty_folder(venv, tmp_path):
     g = zarr.open_group(str(movie), mode="r")
     assert g["delay"].shape == (10,)  # binning.count=10 reached the run
     # the demo's structures and solvent curves came from the installed package's data
-    config = g.attrs["config"]
+    config = movie_attrs.config(g)
+    assert config, "the movie records its config"
     demo = venv.site / "movieproc" / "_data" / "demo_data"
     assert Path(config["model"]["ground"]) == demo / "ground.xyz"
     assert Path(config["run"]["generate"]["scenario"]) == demo / "scenario.yaml"

@@ -4,10 +4,24 @@ from __future__ import annotations
 
 import datetime as _dt
 import logging
+import sys
 import platform
 
 
 log = logging.getLogger("movieproc")
+
+
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is when a record is emitted (not the one at set-up), so a
+    caller that redirects stderr later (a notebook, a test capture, a wrapper script) gets the lines."""
+
+    @property  # type: ignore[override]
+    def stream(self):
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value):
+        pass
 
 
 def setup_logging(level=logging.INFO):
@@ -17,7 +31,7 @@ def setup_logging(level=logging.INFO):
 
     root = logging.getLogger("movieproc")
     if not root.handlers:
-        handler = logging.StreamHandler()
+        handler = _StderrHandler()
         handler.setFormatter(logging.Formatter("%(asctime)s movieproc %(levelname)s: %(message)s", "%H:%M:%S"))
         root.addHandler(handler)
     root.setLevel(max(level, logging.WARNING) if quiet() else level)
