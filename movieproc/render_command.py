@@ -12,6 +12,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from . import config as mpconfig
+from . import resources
 from .errors import ConfigError, InputError
 
 
@@ -26,24 +27,20 @@ def add_parser(sub):
     return p
 
 
-def render_config(movie_attrs: dict, overrides, earlier: dict | None = None) -> dict:
+def render_config(recorded: dict, overrides, earlier: dict | None = None) -> dict:
     """The ``render`` and ``run`` sections: the movie's recorded config with the ``render`` section of the
     earlier render in the output folder (``earlier``; else the schema's defaults), then ``overrides``.
 
     Only ``render.*`` and ``run.name`` may be overridden (the movie is not re-made).
     """
-    recorded = movie_attrs.get("config") or {}
-    if isinstance(recorded, str):
-        import yaml
-
-        recorded = yaml.safe_load(recorded) or {}
+    recorded = recorded or {}
     for item in overrides:
         key = item.split("=", 1)[0]
         if not (key.startswith("render.") or key == "run.name"):
             raise ConfigError(key, "given to movieproc render", "a render.* key or run.name (the movie is only "
                               "re-drawn; other settings need movieproc run)")
     # validated inside a complete config (the default one), so that only these two settings matter
-    raw = mpconfig.read_file(mpconfig.DEFAULT_CONFIG)
+    raw = mpconfig.read_file(resources.default_config())
     raw["render"] = dict(earlier or recorded.get("render") or {})
     raw["run"]["name"] = (recorded.get("run") or {}).get("name", raw["run"]["name"])
     cfg = mpconfig.validate(mpconfig.apply_overrides(raw, overrides))
@@ -51,15 +48,16 @@ def render_config(movie_attrs: dict, overrides, earlier: dict | None = None) -> 
 
 
 def cmd_render(args):
+    from .io import movie as movie_io
     from .io import store
     from .stages import render
 
     movie = Path(args.movie)
     if not (movie / "zarr.json").is_file():
         raise InputError(movie, "not a zarr store", "a movie store (movie.zarr) written by movieproc run")
-    attrs = dict(store.open_group(movie, "movie").attrs)
+    recorded = movie_io.config(store.open_group(movie, "movie"))
     folder = Path(args.out) if args.out else movie.parent / "figures"
-    cfg = render_config(attrs, args.overrides, render.earlier_settings(folder / ".done"))
+    cfg = render_config(recorded, args.overrides, render.earlier_settings(folder / ".done"))
     written = render.run({"movie": movie, "delays": movie.parent / "delays.zarr", "shots": movie.parent / "shots.zarr"},
                          folder / ".done", cfg)
     print(f"wrote {len(written)} file(s) in {folder}")

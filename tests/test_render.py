@@ -90,7 +90,7 @@ def write_movie(path, n_delay=12, n_q=60, warnings=None):
     n_shots = np.full(n_delay, 200)
     n_shots[4], n_shots[6] = 3, 0
     diff[6] = np.nan  # an empty bin
-    attrs = {"title": "movie of run 'small'", "config": {"run": {"name": "small"}},
+    attrs = {"title": "movie of run 'small'", "config_yaml": "run:\n  name: small\n",
              "input_files": ["run_000.h5"], "input_checksums": {"run_000.h5": "sha256:00"}, "input_mode": "curves",
              "selection_counts": {"pulse_energy": 5, "timing_missing": 7, "total": 500, "kept": 488, "dropped": 12,
                                   "kept_pump_on": 320, "kept_pump_off": 168},
@@ -173,6 +173,7 @@ def test_render_command_redraws_a_copy_and_leaves_every_store_untouched(tmp_path
     after = {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in movie.rglob("*") if p.is_file()}
     assert after == before
     assert (tmp_path / "figures" / "report.html").is_file()
+    assert "<title>small: " in (tmp_path / "figures" / "report.html").read_text()  # the movie's run name
     assert not (tmp_path / "figures" / "movie.gif").exists()
     # only render settings may be changed: the movie is not re-made
     assert cli.main(["render", str(movie), "--set", "binning.width_ps=0.1"]) == 2

@@ -101,7 +101,7 @@ def _shots_strip(ax, bounds, shots, low_count):
     low = np.zeros(shots.size, bool) if low_count is None else np.asarray(low_count, bool)
     colors = np.where(low, style.FIT, "0.5")
     ax.barh(bounds[:, 0], np.maximum(shots, 0.5), height=bounds[:, 1] - bounds[:, 0], align="edge", color=colors,
-            lw=0)
+            edgecolor="white", lw=0.4)  # a thin white line between neighbouring bins
     ax.xaxis.set_major_locator(MaxNLocator(2, integer=True))
     ax.set_xlabel("pump-on\nshots per bin")
     ax.tick_params(labelleft=False)
@@ -227,12 +227,12 @@ def difference_curves(q, delay, diff, diff_err, delays=None, q_weighted=True, mo
     bar = nice_step(0.8 * step)
     x = q[0] - 0.02 * (q[-1] - q[0])
     ax.plot([x, x], [step * 0.35, step * 0.35 + bar], color="k", lw=2, solid_capstyle="butt", clip_on=False)
-    ax.text(x, step * 0.35 + bar / 2, f"{bar:.3g} ", ha="right", va="center", fontsize=7.5)
+    ax.text(x, step * 0.35 + bar / 2, f"{bar:g} ", ha="right", va="center", fontsize=7.5)
     handles = [plt.Line2D([], [], color=style.DATA, label="data"),
                Patch(color=style.DATA, alpha=style.BAND_ALPHA, label="±1 standard error")]
     if model is not None:
         handles.append(plt.Line2D([], [], color=style.FIT, label="fit"))
-    handles.append(plt.Line2D([], [], color="k", lw=2, label=f"scale bar: {bar:.3g} (same units)"))
+    handles.append(plt.Line2D([], [], color="k", lw=2, label=f"scale bar: {bar:g} (same units)"))
     ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=len(handles), fontsize=7,
               frameon=False, borderaxespad=0.2)
     ax.set_yticks([])

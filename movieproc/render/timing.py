@@ -13,8 +13,12 @@ from dataclasses import dataclass
 
 import matplotlib.pyplot as plt
 import numpy as np
+from matplotlib.ticker import MaxNLocator
 
 from . import style
+
+#: Bin spreads over more than this ratio are drawn on a logarithmic axis.
+SPREAD_LOG_RATIO = 20
 
 __all__ = ["CAPTION", "ShotTiming", "diagnostics"]
 
@@ -65,6 +69,7 @@ def _jitter(ax, shots):
         _missing(ax, "no pump-on shot has a timing correction")
         return
     ax.hist(c, bins=60, color=style.DATA, alpha=0.8)
+    ax.xaxis.set_major_locator(MaxNLocator(5))
     ax.set_xlabel("timing correction (fs)")
     ax.set_ylabel("pump-on shots")
     ax.set_title(f"jitter: {np.std(c):.0f} fs rms ({c.size} shots)")
@@ -93,7 +98,7 @@ def _offset(ax, shots, bounds, delay):
 def _shots(ax, bounds, n_shots, low_count, spread):
     low = np.zeros(len(n_shots), bool) if low_count is None else np.asarray(low_count, bool)
     ax.bar(bounds[:, 0], np.asarray(n_shots, float), width=bounds[:, 1] - bounds[:, 0], align="edge",
-           color=np.where(low, style.FIT, "0.55"), lw=0)
+           color=np.where(low, style.FIT, "0.55"), edgecolor="white", lw=0.4)  # white lines between bins
     ax.set_ylabel("pump-on shots per bin")
     ax.set_title(f"{len(n_shots)} bins" + (f", {int(low.sum())} with too few shots (red)" if low.any() else ""))
     style.delay_axis(ax, bounds.ravel())
@@ -101,7 +106,12 @@ def _shots(ax, bounds, n_shots, low_count, spread):
         tw = ax.twinx()
         tw.plot(bounds.mean(axis=1), 1000 * np.asarray(spread, float), "o", ms=2.5, color=style.DATA)
         tw.set_ylabel("spread of corrected delays\nin the bin (fs, rms; blue dots)", fontsize=7, color=style.DATA)
-        tw.set_ylim(bottom=0)
+        values = 1000 * np.asarray(spread, float)
+        values = values[np.isfinite(values) & (values > 0)]
+        if values.size and values.max() > SPREAD_LOG_RATIO * values.min():
+            tw.set_yscale("log")  # wide late bins spread over ps, narrow early ones over tens of fs
+        else:
+            tw.set_ylim(bottom=0)
 
 
 def diagnostics(bounds, delay, n_shots, low_count=None, spread=None, shots: ShotTiming | None = None, title=""):
