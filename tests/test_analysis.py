@@ -443,3 +443,20 @@ def test_a_singular_bin_correlation_names_the_references_key(tmp_path):
     np.testing.assert_array_equal(analyze._correlation(data, np.array([True, False])), np.eye(1))
     data.correlation = None
     assert analyze._correlation(data, np.ones(2, bool)) is None
+
+
+def test_no_usable_bin_names_the_q_points_without_an_error(tmp_path):
+    # a q point behind the beam stop: every shot reads 0 there, so every bin's standard error is 0;
+    # the analysis must say that (not blame binning.min_shots)
+    from movieproc.stages import analyze as A
+
+    q = np.linspace(0.5, 4.5, 20)
+    err = np.full((5, 20), 1e-3)
+    err[:, 0] = 0.0
+    low = np.array([True, False, False, False, False])
+    data = A.Data(path=tmp_path / "binned.zarr", q=q, delay=np.arange(5.0), diff=np.zeros((5, 20)), err=err,
+                  low=low, off_mean=np.ones((5, 20)), spread=np.zeros(5), boot=None, units="1",
+                  units_description="normalized units", models=None)
+    text = A._no_usable_bin(data)
+    assert "1 of 5 bins have fewer shots than binning.min_shots" in text
+    assert "at 1 q point(s) (0.5 1/Å)" in text and "detector.q_min" in text

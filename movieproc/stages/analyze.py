@@ -170,6 +170,20 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     _write(out, data.q, data.delay, arrays, result, config, warnings)
 
 
+def _no_usable_bin(data: Data) -> str:
+    """Why no bin can be analysed: too few shots, non-finite values, or q points without an error."""
+    enough = ~data.low
+    bad_q = ~np.all(np.isfinite(data.err[enough]) & (data.err[enough] > 0), axis=0) if enough.any() else None
+    text = (f"no delay bin of {data.path} can be analysed: {int(data.low.sum())} of {data.low.size} bins have "
+            "fewer shots than binning.min_shots")
+    if bad_q is not None and bad_q.any():
+        qs = ", ".join(f"{v:.3g}" for v in data.q[bad_q][:6]) + (" ..." if bad_q.sum() > 6 else "")
+        text += (f"; the others have no finite, positive standard error at {int(bad_q.sum())} q point(s) "
+                 f"({qs} 1/Å): every shot is the same there (masked, behind the beam stop or off the detector?); "
+                 "mask those pixels or raise detector.q_min")
+    return text
+
+
 def analyze(data: Data, config: dict, warnings: Warnings):
     """Scale, solvent terms, fit, SVD and structures; returns (arrays, result) for the store."""
     factor = _absolute_scale(config, data)
@@ -177,7 +191,7 @@ def analyze(data: Data, config: dict, warnings: Warnings):
     data.boot = None if data.boot is None else data.boot * factor
     usable = ~data.low & np.all(np.isfinite(data.diff), axis=1) & np.all(np.isfinite(data.err) & (data.err > 0), axis=1)
     if usable.sum() == 0:
-        raise DataError(f"no delay bin of {data.path} has enough shots (binning.min_shots) for the analysis")
+        raise DataError(_no_usable_bin(data))
     basis = _basis(config, data, usable, factor, warnings)
     solute_units = SCALE_UNITS if config["scaling"]["mode"] == "solute" else data.units
     physical = config["scaling"]["mode"] == "solute" and bool(config["solvent"]["differentials"])
