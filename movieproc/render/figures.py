@@ -107,8 +107,11 @@ def _shots_strip(ax, bounds, shots, low_count):
     ax.tick_params(labelleft=False)
     ax.set_ylabel("")
     if low.any():
-        ax.barh([], [], color=style.FIT, label=f"too few\n({int(low.sum())} bins)")
-        ax.legend(loc="lower right", fontsize=6.5, frameon=False)
+        # the whole row is tinted: a bin with 2 shots has a bar too short to see
+        for lo, hi in bounds[low]:
+            ax.axhspan(lo, hi, color=style.FIT, alpha=0.25, lw=0)
+        ax.legend(handles=[Patch(color=style.FIT, alpha=0.5, label=f"too few\n({int(low.sum())} bins)")],
+                  loc="lower right", fontsize=6.5, frameon=False)
 
 
 def difference_map(q, delay, diff, bounds=None, q_weighted=True, low_count=None, n_shots=None, title="", units=""):

@@ -288,6 +288,10 @@ def _kinetics_figure(movie: Movie, figs: _Figures, name):
     text = "\n".join(f"{k:>9s} = {v['value']:.4g} ± {v['error']:.2g} {report.unit_text(v.get('units'))}"
                      for k, v in (a.get("fit_parameters") or {}).items())
     curves = kinetics.population_curves(a, movie.delay, arr.get("population"))
+    physical = [t for t in movie.coords.get("term", []) if t not in figures.NUISANCE_TERMS]
+    if curves is None and (arr.get("solvent_coef") is None or not physical) and arr.get("chi2") is None:
+        log.info("no kinetics figure: no fit, no solvent terms and no chi2 per delay in the movie")
+        return
     mode = a.get("fit_mode") or (a.get("config") or {}).get("fit", {}).get("mode", "none")
     note = "" if curves is not None else f"no fit configured (fit.mode: {mode}): no populations drawn"
     if curves is not None and text:
