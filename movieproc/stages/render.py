@@ -49,7 +49,7 @@ REPORT = "report.html"
 #: The animation's name.
 ANIMATION = "movie.gif"
 #: Resolution of the PNGs embedded in the report (dpi; the files use render.dpi).
-REPORT_DPI = 100
+REPORT_DPI = 100  # of the report's images when no PNG files are written
 
 
 def _attr_value(value):
@@ -169,7 +169,10 @@ class _Figures:
         for fmt in self.formats:
             figures.save(fig, self.folder / f"{name}.{fmt}", self.dpi)
             self.written.append(f"{name}.{fmt}")
-        self.embedded.append(report.Figure(name, caption, figures.png_bytes(fig, REPORT_DPI)))
+        # the report embeds the PNG just written (drawing a figure costs more than reading it back)
+        png = (self.folder / f"{name}.png").read_bytes() if "png" in self.formats else figures.png_bytes(fig,
+                                                                                                          REPORT_DPI)
+        self.embedded.append(report.Figure(name, caption, png))
         figures.plt.close(fig)
         if self.counter is not None:
             self.counter.update(1)
