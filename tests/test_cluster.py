@@ -30,6 +30,9 @@ from conftest import run_datasets, write_h5
 pytestmark = pytest.mark.slow
 #: The tests of the threaded reference (`work`) run on one xdist worker (--dist loadgroup): it is made once.
 ON_THE_REFERENCE_WORKER = pytest.mark.xdist_group("cluster-reference")
+#: The Snakemake-executor tests build their own reference on the worker they run on (the module's
+#: fixture is made once per worker), so the two groups can run at the same time.
+ON_THE_EXECUTOR_WORKER = pytest.mark.xdist_group("cluster-executors")
 
 SHOTS = 2400  # small demo run: a few seconds per stage
 SUBMIT = Path(__file__).with_name("cluster_submit.sh")
@@ -261,7 +264,7 @@ def test_a_worker_killed_during_a_workflow_run_fails_it_clearly_and_a_rerun_give
 
 # ------------------------------------------------------------------ Snakemake executors
 
-@ON_THE_REFERENCE_WORKER
+@ON_THE_EXECUTOR_WORKER
 def test_generic_cluster_executor_runs_jobs_as_separate_processes(work, tmp_path, monkeypatch):
     pytest.importorskip("snakemake_executor_plugin_cluster_generic",
                         reason="install the test extra: pip install -e '.[test]'")
@@ -283,7 +286,7 @@ def test_generic_cluster_executor_runs_jobs_as_separate_processes(work, tmp_path
     assert effective["output_dir"] == "results/generic" and effective["run"]["generate"]["shots"] == SHOTS
 
 
-@ON_THE_REFERENCE_WORKER
+@ON_THE_EXECUTOR_WORKER
 def test_slurm_profile_dry_run(work, caplog):
     from snakemake_interface_executor_plugins.registry import ExecutorPluginRegistry
 
