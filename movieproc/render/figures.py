@@ -533,8 +533,9 @@ def realspace(r, delay, values, delays=None, title="", units="", info=None):
 
 #: Most frames an animation draws (delays beyond are thinned evenly): keeps the GIF small and quick.
 ANIMATION_MAX_FRAMES = 60
-#: Colours of the GIF palette (one palette for all frames, from the first).
-GIF_COLORS = 64
+#: Colours of the GIF palette (one palette for all frames, from the first, middle and last frames;
+#: octree quantization keeps small areas of a distinct colour, such as one element's atoms).
+GIF_COLORS = 128
 
 
 def _geometry_text(label, i):
@@ -621,8 +622,12 @@ def animation(path, q, delay, data, err, model, positions, element, label=None, 
         plt.close(fig)
     if not frames:
         raise ValueError("data: no delay with finite values to animate")
-    first = frames[0].quantize(colors=GIF_COLORS, method=Image.Quantize.MEDIANCUT)
-    rest = [f.quantize(palette=first, dither=Image.Dither.NONE) for f in frames[1:]]
+    picks = [frames[0], frames[len(frames) // 2], frames[-1]]
+    montage = Image.new("RGB", (picks[0].width, picks[0].height * len(picks)))
+    for k, frame in enumerate(picks):
+        montage.paste(frame, (0, k * frame.height))
+    palette = montage.quantize(colors=GIF_COLORS, method=Image.Quantize.FASTOCTREE)
+    first, *rest = [f.quantize(palette=palette, dither=Image.Dither.NONE) for f in frames]
     with atomic_path(path) as tmp:
         first.save(tmp, format="GIF", save_all=True, append_images=rest, duration=int(1000 / fps), loop=0)
 
@@ -630,7 +635,7 @@ def animation(path, q, delay, data, err, model, positions, element, label=None, 
 def _structure_axes(sax, positions, element):
     """Static parts of the structure panel; returns its moving artists (atoms, text)."""
     kinds = list(dict.fromkeys(element))
-    colors = {e: f"C{i}" for i, e in enumerate(kinds)}
+    colors = {e: plt.cm.tab10(i % 10) for i, e in enumerate(kinds)}  # one distinct colour per element
     finite = positions[np.isfinite(positions).all(axis=(1, 2))]
     span = np.nanmax(np.abs(finite[..., [0, 2]])) * 1.15 if finite.size else 5.0
     sax.set_xlim(-span, span)
@@ -641,7 +646,7 @@ def _structure_axes(sax, positions, element):
     dots = sax.scatter(np.zeros(len(element)), np.zeros(len(element)), c=[colors[e] for e in element],
                        s=[90 if e == kinds[0] else 35 for e in element], animated=True)
     for e in kinds:
-        sax.scatter([], [], c=colors[e], label=e)
+        sax.scatter([], [], color=colors[e], label=e)
     sax.legend(fontsize=7, loc="upper right")
     stext = sax.text(0.02, 0.98, "", transform=sax.transAxes, fontsize=7.5, va="top", animated=True)
     return [dots, stext]

@@ -20,6 +20,7 @@ import yaml
 from ..io.store import atomic_path
 from ..safety import SAFETY
 from ..warning_groups import group_warnings
+from . import style
 
 __all__ = ["Content", "Figure", "render_html", "unit_text", "write"]
 
@@ -76,8 +77,8 @@ class Content:
 
 
 def unit_text(units) -> str:
-    """Units as printed after a value: '' for none or dimensionless ('1')."""
-    return "" if units in (None, "", "1") else str(units)
+    """Units as printed after a value: '' for none or dimensionless ('1'), symbols for pint names."""
+    return style.unit_label(units)
 
 
 def _e(value) -> str:

@@ -129,3 +129,13 @@ def delay_scale_note(delay) -> str:
     if not is_symlog(delay):
         return "delay axis linear"
     return (f"delay axis linear within ±{DELAY_LINTHRESH_PS:g} ps of time zero, logarithmic beyond (symlog)")
+
+
+#: Unit strings as the movie stores them (parseable by pint) -> as figures and the report print them.
+UNIT_SYMBOLS = {"angstrom": "Å", "1/angstrom": "1/Å", "degree": "°", "deg": "°"}
+
+
+def unit_label(units) -> str:
+    """A stored unit string as printed: 'Å' for 'angstrom', '' for none or dimensionless ('1')."""
+    text = "" if units in (None, "", "1") else str(units)
+    return UNIT_SYMBOLS.get(text, text)

@@ -135,7 +135,7 @@ def _read_geometry(m) -> dict:
                  else unit if isinstance(unit, list) else [unit] * len(names))
         lo = store.read(m, "geometry_lower") if "geometry_lower" in m else np.full_like(val, np.nan)
         hi = store.read(m, "geometry_upper") if "geometry_upper" in m else np.full_like(val, np.nan)
-        return {n: (val[:, j], lo[:, j], hi[:, j], units[j]) for j, n in enumerate(names)}
+        return {n: (val[:, j], lo[:, j], hi[:, j], style.unit_label(units[j])) for j, n in enumerate(names)}
     out = {}
     for key in sorted(m.array_keys()):
         if key.startswith("geometry_") and not key.endswith(("_lower", "_upper")):
