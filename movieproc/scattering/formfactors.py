@@ -355,6 +355,15 @@ def incoherent(q, element):
         S(q), e.u. (per atom, in units of the Thomson cross-section), float64.
     """
     q = _check_q(q, f"incoherent scattering of '{element}'")
+    # the same atoms on the same q grid are asked for again and again (scaling, synthesis, every
+    # analysis): the orbital integrals are computed once per (element, q grid)
+    return _incoherent_on_grid(str(element), np.ascontiguousarray(q, dtype=np.float64).tobytes()).copy()
+
+
+@lru_cache(maxsize=256)
+def _incoherent_on_grid(element: str, q_bytes: bytes) -> np.ndarray:
+    """:func:`incoherent` on the q grid given as float64 bytes (read-only result, cached)."""
+    q = np.frombuffer(q_bytes, dtype=np.float64)
     sym, charge = parse_element(element)
     z = periodictable.elements.symbol(sym).number
     n_el = z - charge
@@ -382,7 +391,9 @@ def incoherent(q, element):
             if a == b and big_l == 0:
                 # an electron's own term counts fully, not as occupancy squared
                 s -= 2.0 * (occ[a] - occ[a] ** 2) * (2 * la + 1) * integral[:, p] ** 2
-    return np.clip(s, 0.0, None)
+    out = np.clip(s, 0.0, None)
+    out.setflags(write=False)
+    return out
 
 
 # ---------------------------------------------------------------------------
