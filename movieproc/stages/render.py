@@ -52,25 +52,13 @@ ANIMATION = "movie.gif"
 REPORT_DPI = 100  # of the report's images when no PNG files are written
 
 
-def _attr_value(value):
-    """An attr that may be stored as a JSON or YAML string (a mapping or list), as a Python value."""
-    if isinstance(value, str) and value[:1] in "{[" or isinstance(value, str) and "\n" in value:
-        import yaml
-
-        try:
-            return yaml.safe_load(value)
-        except yaml.YAMLError:
-            return value
-    return value
-
-
 @dataclass
 class Movie:
     """What the figures and the report use from a movie (see :func:`read_movie`).
 
     ``bounds`` (nd, 2) ps; ``difference``/``difference_error`` (nd, nq) in ``units``;
     ``arrays`` the optional results by their role; ``geometry`` name -> (value, lower,
-    upper, unit), each value ndarray (nd,); ``attrs`` with JSON/YAML strings decoded.
+    upper, unit), each value ndarray (nd,); ``attrs`` as :func:`movieproc.io.movie.readable_attrs` gives them.
     """
 
     path: Path
@@ -109,7 +97,7 @@ def read_movie(path) -> Movie:
         from ..errors import InputError
 
         raise InputError(path, "no difference or its error", "a movie written by movieproc (movieproc run)")
-    attrs = {k: _attr_value(v) for k, v in movie_attrs.readable_attrs(m).items()}
+    attrs = movie_attrs.readable_attrs(m)
     arrays = {role: _read(m, role) for role in (
         "model", "residual", "population", "solvent_coef", "solvent_coef_error", "chi2", "svd_values", "svd_noise",
         "svd_u", "svd_v", "r", "solute_realspace", "positions", "delay_spread", "correlation") if _name(m, role)}
