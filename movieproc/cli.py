@@ -307,12 +307,25 @@ def build_parser():
     return parser
 
 
+def _report_fatal_signals():
+    """Print every thread's Python stack on a fatal signal (``faulthandler``): a bus error (SIGBUS)
+    from a run file cut short while its frames are mapped (``compute.map_frames``) then says where."""
+    import faulthandler
+
+    if not faulthandler.is_enabled():
+        try:
+            faulthandler.enable()
+        except (AttributeError, ValueError, RuntimeError, OSError):  # a stderr without a file descriptor
+            pass
+
+
 def main(argv=None):
     args = build_parser().parse_args(argv)
     was_quiet = progress.quiet()
     if args.quiet:
         progress.set_quiet(True)  # also for the Snakemake jobs this run starts
     setup_logging(logging.DEBUG if args.verbose else logging.INFO)
+    _report_fatal_signals()
     try:
         return int(args.func(args) or 0)
     except MovieprocError as exc:

@@ -97,15 +97,23 @@ def test_two_files_of_uint16_frames_with_dark_hot_pixels_mask_and_saturation(tmp
     assert zarr.open_group(str(out))["pixel_count"].shape == (40,)
 
 
-def test_results_do_not_depend_on_the_scheduler(tmp_path):
+def test_results_do_not_depend_on_the_scheduler_nor_on_how_frames_are_read(tmp_path):
+    # 72 frames of 36 kB (2.5 MiB): whole checksum blocks inside the frames, hashed as they are read
     rng = np.random.default_rng(1)
     det = _detector(mask_file=None)
-    photon = np.full(20, 11.5)
-    _write_run(tmp_path / "run.h5", _frames(det, 20, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
-    _integrate([tmp_path / "run.h5"], tmp_path / "a.zarr", det, COMPUTE)
-    _integrate([tmp_path / "run.h5"], tmp_path / "b.zarr", det,
-                  {"workers": 1, "scheduler": "synchronous", "chunk_shots": 16, "progress": False})
-    np.testing.assert_array_equal(open_shots(tmp_path / "a.zarr").curves(0, 20), open_shots(tmp_path / "b.zarr").curves(0, 20))
+    photon = np.full(72, 11.5)
+    run = tmp_path / "run.h5"
+    _write_run(run, _frames(det, 72, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
+    _integrate([run], tmp_path / "a.zarr", det, COMPUTE)
+    _integrate([run], tmp_path / "b.zarr", det,
+               {"workers": 1, "scheduler": "synchronous", "chunk_shots": 16, "progress": False})
+    _integrate([run], tmp_path / "c.zarr", det, dict(COMPUTE, map_frames=False))
+    first = open_shots(tmp_path / "a.zarr")
+    for other in ("b.zarr", "c.zarr"):
+        np.testing.assert_array_equal(first.curves(0, 72), open_shots(tmp_path / other).curves(0, 72))
+        # the checksum from the bytes the integration read is the file's (hashed whole, again)
+        assert open_shots(tmp_path / other).group.attrs["checksums"] == {str(run): file_checksum(run)}
+    assert first.group.attrs["checksums"] == {str(run): file_checksum(run)}
 
 
 def test_photon_energy_from_the_electron_energy_and_from_the_config(tmp_path):

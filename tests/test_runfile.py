@@ -209,14 +209,19 @@ def test_failed_parallel_ingest_leaves_no_temporary(tmp_path, monkeypatch):
     assert leftovers(tmp_path / "out") == []
 
 
-@pytest.mark.parametrize("layout, planned", [
+#: HDF5 layouts of a (n, 6, 5) frames dataset, and whether its frames are read with os.preadv
+#: (or mapped) rather than through HDF5.
+LAYOUTS = [
     ({}, True),                                            # contiguous: read with os.preadv
     ({"chunks": (3, 6, 5)}, True),                         # chunks of whole frames, last partial: preadv
     ({"chunks": (2, 3, 5)}, False),                        # chunks of part frames: through HDF5
     ({"chunks": (4, 6, 5), "compression": "gzip"}, False),  # compressed: through HDF5
     ({"chunks": (4, 6, 5), "shuffle": True}, False),       # a filter without compression: through HDF5
     ({"dtype": ">u2"}, False),                             # big-endian: through HDF5
-])
+]
+
+
+@pytest.mark.parametrize("layout, planned", LAYOUTS)
 def test_frames_read_as_hdf5_reads_them_in_every_layout(tmp_path, layout, planned):
     # the reference is the frames written; blocks across the file boundary and into a reused buffer
     import h5py
@@ -242,3 +247,125 @@ def test_frames_read_as_hdf5_reads_them_in_every_layout(tmp_path, layout, planne
     assert (runfile._plan(paths[0]) is not None) == planned
     with pytest.raises(ValueError, match="out: expected"):
         runfile.read_frames(info, 0, 9, out=buffer)
+
+
+def _frames_run(tmp_path, counts, shape, layout, name="run"):
+    """Run files of random uint16 frames (one per count) in ``layout``; the paths and all frames."""
+    import h5py
+
+    rng = np.random.default_rng(5)
+    layout = dict(layout)
+    if "chunks" in layout:  # the layout's chunking of (n, 6, 5) frames, scaled to ``shape``
+        c = layout["chunks"]
+        layout["chunks"] = (c[0], shape[0] if c[1] == 6 else shape[0] // 2, shape[1] if c[2] == 5 else shape[1] // 2)
+    frames = [rng.integers(0, 60000, (n, *shape), dtype=np.uint16) for n in counts]
+    paths = []
+    for i, block in enumerate(frames):
+        base = run_datasets(n=block.shape[0], seed=i)
+        base.pop("curves", None)
+        base.pop("q", None)
+        base["shots/pulse_id"] = base["shots/pulse_id"] + 1000 * i
+        path = write_h5(tmp_path / f"{name}_{i}.h5", base)
+        with h5py.File(path, "a") as h5:
+            h5.create_dataset("frames", data=block, **layout)
+        paths.append(path)
+    return paths, np.concatenate(frames)
+
+
+@pytest.mark.parametrize("map_files", [True, False])
+@pytest.mark.parametrize("layout, planned", LAYOUTS)
+def test_frame_reader_gives_the_frames_and_hashes_the_bytes_it_reads(tmp_path, layout, planned, map_files):
+    # 40 kB frames, 2.3 and 1.5 MiB of them per file: whole 1 MiB checksum blocks inside the frames
+    paths, whole = _frames_run(tmp_path, (60, 37), (128, 160), layout)
+    info = runfile.inspect_run(paths)
+    digests = shotstore.BlockDigests()
+    mapped = 0
+    with runfile.FrameReader(info, 16, digests, map_files) as reader:
+        for a, b in [(0, 16), (16, 32), (32, 48), (48, 64), (64, 80), (80, 96), (96, 97), (3, 5)]:
+            got = reader.read(a, b)
+            np.testing.assert_array_equal(got, whole[a:b])
+            mapped += not got.flags.writeable  # mapped from the file, read-only
+        with pytest.raises(ValueError, match="at most 16 frames"):
+            reader.read(0, 17)
+    assert (mapped > 0) == (planned and map_files)
+    for path in paths:
+        # the checksum from the bytes read equals the one of the file read again; frames read
+        # with os.preadv or mapped give most of their blocks' digests, HDF5 reads none
+        assert shotstore.file_checksum(path, digests=digests.of(path)) == shotstore.file_checksum(path)
+        frame_blocks = set(range(-(-int(runfile._plan(path)[0]) // shotstore.DIGEST_BLOCK),
+                                 (int(runfile._plan(path)[-1]) + whole[0].nbytes) // shotstore.DIGEST_BLOCK)) \
+            if planned else set()
+        assert set(digests.of(path)) == frame_blocks
+
+
+@pytest.mark.parametrize("size", [0, 1, 2**20 - 1, 2**20, 2**20 + 1, 3 * 2**20 + 12345])
+def test_run_file_checksum_follows_its_published_definition(tmp_path, size):
+    import hashlib
+
+    import xxhash
+
+    data = np.random.default_rng(size).integers(0, 256, size, dtype=np.uint8).tobytes()
+    path = tmp_path / "run.h5"
+    path.write_bytes(data)
+    # the definition in docs/DESIGN.md, computed with python-xxhash directly: XXH3-128 of the
+    # concatenated XXH3-128 digests of the file's consecutive 1 MiB blocks
+    blocks = [data[i:i + 2**20] for i in range(0, size, 2**20)]
+    expected = xxhash.xxh3_128_hexdigest(b"".join(xxhash.xxh3_128_digest(b) for b in blocks))
+    assert shotstore.file_checksum(path) == f"xxh3_128_blocks:{expected}"
+    # the algorithms earlier stores recorded are still computed as they were
+    assert shotstore.file_checksum(path, "xxh3_128") == f"xxh3_128:{xxhash.xxh3_128_hexdigest(data)}"
+    assert shotstore.file_checksum(path, "sha256") == f"sha256:{hashlib.sha256(data).hexdigest()}"
+    assert shotstore.checksum_algorithm(shotstore.file_checksum(path)) == shotstore.CHECKSUM_ALGORITHM
+    # digests handed in are used, not recomputed: a wrong one changes the result
+    collected = shotstore.BlockDigests()
+    collected.add(path, 7, memoryview(data)[7:])
+    assert sorted(collected.of(path)) == list(range(1, size // 2**20))
+    # read in order in pieces of any size, every whole block is hashed (and pickles without the rest)
+    import pickle
+
+    pieces = shotstore.BlockDigests()
+    cuts = sorted({min(c, size) for c in (0, 5, 300_000, 2**20 + 3, 2**20 + 4, 3 * 2**20, size)})
+    for a, b in zip(cuts, cuts[1:]):
+        pieces.add(path, a, memoryview(data)[a:b])
+    assert sorted(pickle.loads(pickle.dumps(pieces)).of(path)) == list(range(size // 2**20))
+    assert shotstore.file_checksum(path, digests=pieces.of(path)) == f"xxh3_128_blocks:{expected}"
+    assert shotstore.file_checksum(path, digests=collected.of(path)) == f"xxh3_128_blocks:{expected}"
+    if collected.of(path):
+        wrong = {**collected.of(path), 1: bytes(16)}
+        assert shotstore.file_checksum(path, digests=wrong) != f"xxh3_128_blocks:{expected}"
+
+
+@pytest.mark.parametrize("map_files", [True, False])
+def test_a_run_file_cut_short_after_inspection_is_an_error_naming_it(tmp_path, map_files):
+    import os
+
+    paths, _ = _frames_run(tmp_path, (40,), (128, 160), {})
+    info = runfile.inspect_run(paths)
+    with runfile.FrameReader(info, 8, None, map_files) as reader:
+        reader.read(0, 8)
+        os.truncate(paths[0], paths[0].stat().st_size // 2)
+        with pytest.raises(InputError, match="run_0.h5"):
+            reader.read(32, 40)
+
+
+def test_a_mapped_run_file_cut_short_while_in_use_stops_the_process_with_a_bus_error(tmp_path):
+    # the documented limit of compute.map_frames: the process dies of SIGBUS (and faulthandler
+    # names where), where read calls give an error; shown in a child process
+    import signal
+    import subprocess
+    import sys
+    import textwrap
+
+    paths, _ = _frames_run(tmp_path, (40,), (128, 160), {})
+    script = textwrap.dedent(f"""
+        import faulthandler, os
+        from movieproc.io import runfile
+        faulthandler.enable()
+        info = runfile.inspect_run([{str(paths[0])!r}])
+        frames = runfile.FrameReader(info, 8).read(32, 40)
+        os.truncate({str(paths[0])!r}, 4096)
+        print(int(frames.sum()))
+    """)
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert done.returncode == -signal.SIGBUS, done.stderr
+    assert "Bus error" in done.stderr and "<module>" in done.stderr

@@ -398,23 +398,41 @@ def _plan(path: Path) -> np.ndarray | None:
         return None  # read through HDF5, which reports the problem with the file
 
 
-def _read_planned(path: Path, offsets: np.ndarray, dest: np.ndarray) -> None:
-    """Read frames at ``offsets`` into ``dest`` (C-contiguous, (len(offsets), ny, nx)), joining adjacent ones."""
+def _read_planned(path: Path, offsets: np.ndarray, dest: np.ndarray, digests=None) -> None:
+    """Read frames at ``offsets`` into ``dest`` (C-contiguous, (len(offsets), ny, nx)), joining adjacent ones.
+
+    With ``digests``, each joined run is read in pieces that end on multiples of ``digests.block`` in
+    the file, and every piece is handed to ``digests.add`` straight after it is read.
+    """
     frame_bytes = dest[0].nbytes
     raw = memoryview(dest.reshape(-1).view(np.uint8).data)
     breaks = np.flatnonzero(np.diff(offsets) != frame_bytes) + 1
     with open(path, "rb", buffering=0) as fh:
         for a, b in zip(np.r_[0, breaks], np.r_[breaks, offsets.size], strict=True):
-            want, done = (b - a) * frame_bytes, 0
-            while done < want:
-                got = os.preadv(fh.fileno(), [raw[a * frame_bytes + done:b * frame_bytes]], int(offsets[a]) + done)
-                if got <= 0:
-                    raise InputError(f"{path}:frames", "a file shorter than its frames dataset says",
-                                     "an intact run file (copy it again from the source)")
-                done += got
+            base, stop = int(offsets[a]), int(offsets[a]) + (b - a) * frame_bytes
+            cut = base
+            while cut < stop:
+                end = stop if digests is None else min(stop, (cut // digests.block + 1) * digests.block)
+                piece = raw[a * frame_bytes + cut - base:a * frame_bytes + end - base]
+                done = 0
+                while done < piece.nbytes:
+                    got = os.preadv(fh.fileno(), [piece[done:]], cut + done)
+                    if got <= 0:
+                        raise InputError(f"{path}:frames", "a file shorter than its frames dataset says",
+                                         "an intact run file (copy it again from the source)")
+                    done += got
+                if digests is not None:
+                    digests.add(path, cut, piece)
+                cut = end
 
 
-def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+def reads_directly(path) -> bool:
+    """Whether :func:`read_frames` reads this file's frames with ``os.preadv`` (uncompressed, stored
+    whole), so that their bytes can be hashed as they are read."""
+    return _plan(Path(path)) is not None
+
+
+def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = None, digests=None) -> np.ndarray:
     """Read detector frames of shots [start, stop) in their stored dtype (n, ny, nx).
 
     Uncompressed frames stored whole (contiguous, or chunked by whole frames) are read with
@@ -422,6 +440,8 @@ def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = N
     in parallel; other layouts (compressed, partial-frame chunks) go through HDF5's ``read_direct``.
     ``out`` (C-contiguous, the stored dtype, at least ``stop - start`` frames) lets a caller reuse
     one buffer for every block; the returned array is its first ``stop - start`` frames.
+    ``digests`` (a :class:`movieproc.io.shotstore.BlockDigests`) is handed the bytes of frames read
+    with ``os.preadv``, piece by piece while they are in the CPU's cache, for the run file's checksum.
     """
     n = stop - start
     if out is None:
@@ -434,7 +454,7 @@ def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = N
         dest = out[g - start:g - start + (hi - lo)]
         offsets = _plan(Path(path))
         if offsets is not None:
-            _read_planned(Path(path), offsets[lo:hi], dest)
+            _read_planned(Path(path), offsets[lo:hi], dest, digests)
             continue
         with _open(path) as h5:
             try:
@@ -443,3 +463,79 @@ def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = N
                 raise InputError(f"{path}:frames", f"data that cannot be read ({_short(exc)})",
                                  "an intact run file (copy it again from the source)") from None
     return out[:n]
+
+
+class FrameReader:
+    """Blocks of frames, one after another, for one task of a stage; each block is valid until the next.
+
+    Frames stored whole and uncompressed in one run of bytes of one file are mapped from the file
+    (``mmap``) and handed to the caller as a read-only array: the integration reads the page cache
+    directly, with no copy (a copy costs about half as much as integrating the frame). Other blocks
+    are read with :func:`read_frames` into a buffer reused for every block. With ``digests`` (a
+    :class:`movieproc.io.shotstore.BlockDigests`) the bytes of every mapped or directly read block
+    are hashed for the run file's checksum, a mapped block when the next one is asked for (after
+    the caller has used it, while it is still in the CPU's cache).
+
+    A mapped file that is truncated or becomes unreadable (a network file system failing) while a
+    block is in use stops the process with a bus error (SIGBUS) instead of an error message:
+    ``map_files=False`` reads every block with read calls, which report such faults as errors.
+    """
+
+    def __init__(self, info: RunInfo, block: int, digests=None, map_files: bool = True):
+        self.info, self.block, self.digests, self.map_files = info, int(block), digests, bool(map_files)
+        self._buffer: np.ndarray | None = None
+        self._held: tuple | None = None  # (path, file offset, bytes) of the mapped block handed out last
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def close(self) -> None:
+        """Hash the block handed out last (when mapped) and drop this reader's reference to it."""
+        held, self._held = self._held, None
+        if held is not None and self.digests is not None:
+            path, offset, region = held
+            self.digests.add(path, offset, region)
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        """Frames of shots [start, stop) (n, ny, nx) in their stored dtype; at most ``block`` frames."""
+        self.close()
+        if stop - start > self.block:
+            raise ValueError(f"at most {self.block} frames at once, asked for {stop - start}")
+        mapped = self._map(start, stop) if self.map_files else None
+        if mapped is not None:
+            return mapped
+        if self._buffer is None:
+            self._buffer = np.empty((min(self.block, self.info.n_shots), *self.info.frames_shape),
+                                    dtype=self.info.data_dtype)
+        return read_frames(self.info, start, stop, out=self._buffer, digests=self.digests)
+
+    def _map(self, start: int, stop: int) -> np.ndarray | None:
+        import mmap
+
+        parts = list(self.info.locate(start, stop))
+        if len(parts) != 1:
+            return None
+        path, lo, hi, _ = parts[0]
+        offsets = _plan(Path(path))
+        if offsets is None:
+            return None
+        frame_bytes = int(np.prod(self.info.frames_shape)) * self.info.data_dtype.itemsize
+        first = int(offsets[lo])
+        if hi - lo > 1 and np.any(np.diff(offsets[lo:hi]) != frame_bytes):
+            return None  # frames of this block lie in chunks apart: read them
+        size = (hi - lo) * frame_bytes
+        page = first // mmap.ALLOCATIONGRANULARITY * mmap.ALLOCATIONGRANULARITY
+        with open(path, "rb", buffering=0) as fh:
+            if os.fstat(fh.fileno()).st_size < first + size:
+                raise InputError(f"{path}:frames", "a file shorter than its frames dataset says",
+                                 "an intact run file (copy it again from the source)")
+            region = mmap.mmap(fh.fileno(), first - page + size, access=mmap.ACCESS_READ, offset=page)
+        if hasattr(region, "madvise"):
+            region.madvise(mmap.MADV_WILLNEED)  # the whole block read ahead at once when it is not cached
+        frames = np.frombuffer(region, dtype=self.info.data_dtype, count=size // self.info.data_dtype.itemsize,
+                               offset=first - page).reshape(hi - lo, *self.info.frames_shape)
+        self._held = (path, first, memoryview(region)[first - page:])
+        return frames

@@ -345,19 +345,25 @@ def _create_store(tmp, info, setup, table, chunk, attrs):
     return group, paths
 
 
-def _integrate_range(start, stop, info, setup, paths, block):
-    """Integrate shots [start, stop) block by block into the store's arrays; the counts to report."""
+def _integrate_range(start, stop, info, setup, paths, block, map_files=True):
+    """Integrate shots [start, stop) block by block into the store's arrays.
+
+    Returns the counts to report and the checksum block digests of the frame bytes read
+    (:class:`movieproc.io.shotstore.BlockDigests`): the run files are hashed from the bytes the
+    integration reads, not read a second time.
+    """
     targets = {name: zarr.open_array(path, mode="r+") for name, path in paths.items()}
     excluded = lost_sector = lost_var = 0
-    buffer = np.empty((min(block, stop - start), *info.frame_shape), dtype=info.data_dtype)
-    for a in range(start, stop, block):
-        b = min(a + block, stop)
-        res = curves.shot_curves(runfile.read_frames(info, a, b, out=buffer), setup.layout, setup.scale[a:b])
-        for name, values in res.arrays.items():
-            targets[name][a:b] = values.astype(np.float32)
-        excluded, lost_sector, lost_var = (excluded + res.excluded, lost_sector + res.lost_sector,
-                                           lost_var + res.lost_variance)
-    return excluded, lost_sector, lost_var
+    digests = shotstore.BlockDigests()
+    with runfile.FrameReader(info, min(block, stop - start), digests, map_files) as reader:
+        for a in range(start, stop, block):
+            b = min(a + block, stop)
+            res = curves.shot_curves(reader.read(a, b), setup.layout, setup.scale[a:b])
+            for name, values in res.arrays.items():
+                targets[name][a:b] = values.astype(np.float32)
+            excluded, lost_sector, lost_var = (excluded + res.excluded, lost_sector + res.lost_sector,
+                                               lost_var + res.lost_variance)
+    return excluded, lost_sector, lost_var, digests
 
 
 def _block_frames(info) -> int:
@@ -373,13 +379,18 @@ def task_frames(n_shots: int, chunk_shots: int, workers: int, block: int) -> int
     return max(1, min(int(chunk_shots), max(int(block), want)))
 
 
-def _integrate_all(info, setup, paths, compute, chunk, warnings) -> int:
-    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out."""
+def _integrate_all(info, setup, paths, compute, chunk, warnings) -> tuple[int, shotstore.BlockDigests]:
+    """Integrate every shot in parallel chunks; warn about lost values; the shot pixels left out and
+    the checksum block digests of the frames read."""
     block = _block_frames(info)
-    work = partial(_integrate_range, info=info, setup=setup, paths=paths, block=block)
+    work = partial(_integrate_range, info=info, setup=setup, paths=paths, block=block,
+                   map_files=compute.get("map_frames", True))
     results = map_ranges(work, chunk_ranges(info.n_shots, chunk), compute["workers"],
                          compute["scheduler"], compute["progress"], "integrate")
     excluded, lost_sector, lost_var = (int(sum(r[i] for r in results)) for i in range(3))
+    digests = shotstore.BlockDigests()
+    for r in results:
+        digests.update(r[3])
     if lost_sector:
         warnings.add(f"{lost_sector} sector value(s) in curves_sectors are NaN beyond the q points named per "
                      "sector: every pixel there was left out of its shot (non-finite or saturated), or the "
@@ -387,7 +398,7 @@ def _integrate_all(info, setup, paths, compute, chunk, warnings) -> int:
     if lost_var:
         warnings.add(f"{lost_var} value(s) of curves_var are NaN: no pixels, or (spread) too few to estimate "
                      "a spread (effective pixel count <= 1)")
-    return excluded
+    return excluded, digests
 
 
 def run(inputs: dict, out: Path, config: dict) -> None:
@@ -412,10 +423,14 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     if info.mode != "frames":
         raise InputError(info.files[0], "pre-integrated curves",
                          "detector frames (N, ny, nx) for the integrate stage (curves go through ingest)")
-    # the checksums are computed in a thread beside the set-up and the integration (xxhash releases
-    # the GIL): on a run of many frames they cost about a third of the integration's time
+    # Checksums: frames read with os.preadv are hashed from the bytes the integration reads (a
+    # second read of the file cost as much as a third of the integration); the rest of those files
+    # afterwards. Files read through HDF5 (compressed...) are hashed whole in a thread beside the
+    # set-up and the integration (xxhash releases the GIL).
+    direct = {str(f) for f in info.files if runfile.reads_directly(f)}
     with ThreadPoolExecutor(max_workers=1) as hashing:
-        checksums = hashing.submit(lambda: {str(f): shotstore.file_checksum(f) for f in info.files})
+        others = hashing.submit(lambda: {str(f): shotstore.file_checksum(f) for f in info.files
+                                         if str(f) not in direct})
         warnings = Warnings("integrate", log)
         table = runfile.read_table(info)
         with config_keys(CONFIG_KEYS, config):
@@ -436,9 +451,12 @@ def run(inputs: dict, out: Path, config: dict) -> None:
         chunk = task_frames(info.n_shots, compute["chunk_shots"], compute["workers"], _block_frames(info))
         with store.atomic_path(out) as tmp, config_keys(CONFIG_KEYS, config):
             group, paths = _create_store(tmp, info, setup, dict(table, photon_energy=photon), chunk, attrs)
-            excluded = _integrate_all(info, setup, paths, compute, chunk, warnings)
+            excluded, digests = _integrate_all(info, setup, paths, compute, chunk, warnings)
+            hashed = others.result()
+            checksums = {str(f): hashed[str(f)] if str(f) not in direct
+                         else shotstore.file_checksum(f, digests=digests.of(f)) for f in info.files}
             store.update_attrs(group, {"shot_pixels_left_out": excluded, "warnings": list(warnings),
-                                       "checksums": checksums.result()})
+                                       "checksums": checksums})
     log.info("integrated %d shots onto %d q points (reference %.4f keV, energy-aware %s); %d shot pixels left "
              "out (non-finite or saturated); wrote %s", info.n_shots, setup.layout.q.size, setup.reference_energy,
              detector["energy_aware"], excluded, out)
