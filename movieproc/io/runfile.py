@@ -500,7 +500,9 @@ class FrameReader:
             self.digests.add(path, offset, region)
 
     def read(self, start: int, stop: int) -> np.ndarray:
-        """Frames of shots [start, stop) (n, ny, nx) in their stored dtype; at most ``block`` frames."""
+        """Frames of shots from ``start`` (n, ny, nx) in their stored dtype: those of [start, stop)
+        (at most ``block`` frames), or fewer, from ``start`` on, when they lie apart in the file or
+        in two files (mapped blocks stop there; ask again from ``start + n``)."""
         self.close()
         if stop - start > self.block:
             raise ValueError(f"at most {self.block} frames at once, asked for {stop - start}")
@@ -516,16 +518,17 @@ class FrameReader:
         import mmap
 
         parts = list(self.info.locate(start, stop))
-        if len(parts) != 1:
+        if not parts:
             return None
-        path, lo, hi, _ = parts[0]
+        path, lo, hi, _ = parts[0]  # the frames in the file of the first: up to its end
         offsets = _plan(Path(path))
         if offsets is None:
             return None
         frame_bytes = int(np.prod(self.info.frames_shape)) * self.info.data_dtype.itemsize
         first = int(offsets[lo])
-        if hi - lo > 1 and np.any(np.diff(offsets[lo:hi]) != frame_bytes):
-            return None  # frames of this block lie in chunks apart: read them
+        apart = np.flatnonzero(np.diff(offsets[lo:hi]) != frame_bytes)
+        if apart.size:  # frames in chunks apart: up to the end of the first run of adjacent ones
+            hi = lo + int(apart[0]) + 1
         size = (hi - lo) * frame_bytes
         page = first // mmap.ALLOCATIONGRANULARITY * mmap.ALLOCATIONGRANULARITY
         with open(path, "rb", buffering=0) as fh:
