@@ -23,6 +23,7 @@ measured from +x (the column direction) towards +y (the row direction).
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -135,9 +136,22 @@ def scattering_angles(geometry: Geometry, rows=None, cols=None):
     two_theta, phi : ndarray, float64, shape (ny, nx) (or the broadcast shape)
         Radians; 2theta in [0, pi], phi in (-pi, pi].
     """
+    if rows is None and cols is None:
+        return _frame_angles(geometry)
     pos = lab_positions(geometry, rows, cols)
     radial = np.hypot(pos[..., 0], pos[..., 1])
     return np.arctan2(radial, pos[..., 2]), np.arctan2(pos[..., 1], pos[..., 0])
+
+
+@functools.lru_cache(maxsize=2)
+def _frame_angles(geometry: Geometry):
+    """2theta and phi of every pixel centre, computed once per geometry (the set-up of a run asks
+    for them several times: q map, corrections, sectors, geometry check); read-only."""
+    pos = lab_positions(geometry)
+    radial = np.hypot(pos[..., 0], pos[..., 1])
+    two_theta, phi = np.arctan2(radial, pos[..., 2]), np.arctan2(pos[..., 1], pos[..., 0])
+    two_theta.flags.writeable = phi.flags.writeable = False
+    return two_theta, phi
 
 
 def incidence_cosine(geometry: Geometry, rows=None, cols=None) -> np.ndarray:
