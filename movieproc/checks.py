@@ -257,6 +257,28 @@ def missing_geometry(raw: dict) -> list[str]:
 BINNING_MODE_KEYS = {"width": ("width_ps", "start_ps", "stop_ps"), "population": ("count",), "edges": ("edges_ps",)}
 
 
+def reset_other_binning_modes(config: dict) -> dict:
+    """The validated ``config`` with the binning keys of modes other than ``binning.mode`` at their
+    schema defaults (in place; returned).
+
+    Those keys do nothing; left at a value a layer gave them (``config/process.yaml``'s
+    ``count: 30`` after ``--set binning.mode=width``), the written-out ``config.effective.yaml``
+    would be refused by :func:`check_binning_keys` when run again.
+    """
+    from .config import load_schema
+
+    binning = config.get("binning")
+    if not isinstance(binning, dict) or binning.get("mode") not in BINNING_MODE_KEYS:
+        return config
+    defaults = {k: v.get("default") for k, v in load_schema()["properties"]["binning"]["properties"].items()}
+    for other, keys in BINNING_MODE_KEYS.items():
+        if other != binning["mode"]:
+            for key in keys:
+                if key not in BINNING_MODE_KEYS[binning["mode"]] and key in binning:
+                    binning[key] = defaults.get(key)
+    return config
+
+
 def check_binning_keys(raw: dict, overrides=()) -> None:
     """Refuse a binning key that the chosen ``binning.mode`` would silently ignore.
 

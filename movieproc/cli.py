@@ -113,13 +113,15 @@ def _run(config, args):
 
 def build_config(path=None, overrides=(), layers=()) -> tuple[dict, dict]:
     """The raw and the validated config of a command (:func:`movieproc.config.build`, then validated),
-    with the binning keys the mode would ignore refused (:func:`movieproc.checks.check_binning_keys`)."""
-    from .checks import check_binning_keys
+    with the binning keys the mode would ignore refused (:func:`movieproc.checks.check_binning_keys`)
+    and, where they came from a layer (a mode switched on the command line), reset to their defaults
+    (:func:`movieproc.checks.reset_other_binning_modes`): the config written out runs again as it is."""
+    from .checks import check_binning_keys, reset_other_binning_modes
 
     raw = mpconfig.build(path, overrides, layers)
     config = mpconfig.validate(raw)
     check_binning_keys(raw, overrides)
-    return raw, config
+    return raw, reset_other_binning_modes(config)
 
 
 def load_config(path=None, overrides=(), layers=()) -> dict:

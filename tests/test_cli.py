@@ -115,6 +115,19 @@ def test_a_config_file_contradicting_itself_is_refused_but_an_effective_config_p
     assert cli.load_config(effective)["binning"]["mode"] == "edges"
 
 
+def test_an_effective_config_after_a_mode_switched_on_the_command_line_runs_again(tmp_path):
+    # config/process.yaml bins by population (count: 30); switched to width on the command line,
+    # its count is reset to the default, so the config written out loads again as it is
+    switched = cli.load_config(cli.PROCESS_CONFIG, ["run.files=[run.h5]", "binning.mode=width",
+                                                    "binning.width_ps=0.15"])
+    count_default = C.load_schema()["properties"]["binning"]["properties"]["count"]["default"]
+    assert switched["binning"]["width_ps"] == 0.15 and switched["binning"]["count"] == count_default
+    effective = tmp_path / "config.effective.yaml"
+    effective.write_text(yaml.safe_dump(switched))
+    again = cli.load_config(effective)
+    assert again["binning"] == switched["binning"]
+
+
 def test_check_lists_the_binning_conflict(capsys):
     assert cli.main(["check", "--set", "binning.width_ps=0.1"]) == 1
     out = capsys.readouterr().out
