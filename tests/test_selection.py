@@ -212,3 +212,18 @@ def test_signal_directions_hold_a_rare_signal_but_not_a_distorted_shot():
     assert np.linalg.norm(basis @ (other / np.linalg.norm(other))) < 0.1
     # noise alone gives no direction (all singular values under the noise edge)
     assert S.signal_directions(rng.standard_normal((120, 120)), group).shape == (0, 120)
+
+
+@pytest.mark.parametrize("shape, fraction, axis", [((40, 7), 0.1, 0), ((41, 7), 0.25, 0), ((5, 33), 0.2, 1),
+                                                  ((3,), 0.3, 0), ((200, 3), 0.0, 0), ((9, 4), 0.45, 0)])
+def test_trim_mean_is_scipys(shape, fraction, axis):
+    # reference: scipy.stats.trim_mean (same cut int(fraction * n) from each end), with ties
+    rng = np.random.default_rng(sum(shape))
+    values = rng.integers(0, 6, shape).astype(float) + rng.standard_normal(shape) * (rng.random(shape) < 0.5)
+    np.testing.assert_allclose(S.trim_mean(values, fraction, axis=axis),
+                               stats.trim_mean(values, fraction, axis=axis), rtol=1e-12, atol=1e-12)
+
+
+def test_trim_mean_refuses_to_cut_every_value():
+    with pytest.raises(ValueError, match="leaves none"):
+        S.trim_mean(np.arange(8.0), 0.5)

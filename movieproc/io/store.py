@@ -151,10 +151,11 @@ def write_array(group, name, data, dims, units=None, chunks=None, attrs=None, dt
         dimension_names=list(dims),
         fill_value=fill,
         overwrite=True,
+        attributes=_label(units, attrs, long_name),
     )
     if data.size:
         arr[...] = data
-    return _label(arr, units, attrs, long_name)
+    return arr
 
 
 def create_array(group, name, shape, dims, dtype, chunks, units=None, attrs=None, long_name=None):
@@ -162,20 +163,20 @@ def create_array(group, name, shape, dims, dtype, chunks, units=None, attrs=None
     arr = group.create_array(
         name, shape=shape, dtype=dtype, chunks=chunks, dimension_names=list(dims),
         fill_value=np.nan if np.dtype(dtype).kind == "f" else 0, overwrite=True,
+        attributes=_label(units, attrs, long_name),
     )
-    return _label(arr, units, attrs, long_name)
+    return arr
 
 
-def _label(arr, units, attrs, long_name=None):
-    """Store long_name, units and further attributes on an array; return it."""
+def _label(units, attrs, long_name=None) -> dict:
+    """long_name, units and further attributes of an array, JSON-ready (given when the array is
+    created: one metadata write per array instead of two)."""
     meta = dict(attrs or {})
     if long_name is not None:
         meta["long_name"] = long_name
     if units is not None:
         meta["units"] = units
-    if meta:
-        arr.attrs.update(_jsonable(meta))
-    return arr
+    return _jsonable(meta)
 
 
 def new_group(path, attrs=None):
