@@ -221,34 +221,6 @@ LAYOUTS = [
 ]
 
 
-@pytest.mark.parametrize("layout, planned", LAYOUTS)
-def test_frames_read_as_hdf5_reads_them_in_every_layout(tmp_path, layout, planned):
-    # the reference is the frames written; blocks across the file boundary and into a reused buffer
-    import h5py
-
-    rng = np.random.default_rng(3)
-    frames = [rng.integers(0, 60000, (n, 6, 5), dtype=np.uint16) for n in (11, 7)]
-    paths = []
-    for i, block in enumerate(frames):
-        base = run_datasets(n=block.shape[0], seed=i)
-        base.pop("curves", None)
-        base.pop("q", None)
-        base["shots/pulse_id"] = base["shots/pulse_id"] + 1000 * i
-        path = write_h5(tmp_path / f"run_{i}.h5", base)
-        with h5py.File(path, "a") as h5:
-            h5.create_dataset("frames", data=block, **layout)
-        paths.append(path)
-    info = runfile.inspect_run(paths)
-    whole = np.concatenate(frames)
-    buffer = np.zeros((8, 6, 5), info.data_dtype)
-    for a, b in [(0, 18), (2, 9), (9, 14), (10, 11), (17, 18)]:
-        got = runfile.read_frames(info, a, b) if b - a > 8 else runfile.read_frames(info, a, b, out=buffer)
-        np.testing.assert_array_equal(got, whole[a:b])
-    assert (runfile._plan(paths[0]) is not None) == planned
-    with pytest.raises(ValueError, match="out: expected"):
-        runfile.read_frames(info, 0, 9, out=buffer)
-
-
 def _frames_run(tmp_path, counts, shape, layout, name="run"):
     """Run files of random uint16 frames (one per count) in ``layout``; the paths and all frames."""
     import h5py
@@ -270,6 +242,20 @@ def _frames_run(tmp_path, counts, shape, layout, name="run"):
             h5.create_dataset("frames", data=block, **layout)
         paths.append(path)
     return paths, np.concatenate(frames)
+
+
+@pytest.mark.parametrize("layout, planned", LAYOUTS)
+def test_frames_read_as_hdf5_reads_them_in_every_layout(tmp_path, layout, planned):
+    # the reference is the frames written; blocks across the file boundary and into a reused buffer
+    paths, whole = _frames_run(tmp_path, (11, 7), (6, 5), layout)
+    info = runfile.inspect_run(paths)
+    buffer = np.zeros((8, 6, 5), info.data_dtype)
+    for a, b in [(0, 18), (2, 9), (9, 14), (10, 11), (17, 18)]:
+        got = runfile.read_frames(info, a, b) if b - a > 8 else runfile.read_frames(info, a, b, out=buffer)
+        np.testing.assert_array_equal(got, whole[a:b])
+    assert (runfile._plan(paths[0]) is not None) == planned
+    with pytest.raises(ValueError, match="out: expected"):
+        runfile.read_frames(info, 0, 9, out=buffer)
 
 
 @pytest.mark.parametrize("map_files", [True, False])
