@@ -288,6 +288,25 @@ def test_frame_reader_gives_the_frames_and_hashes_the_bytes_it_reads(tmp_path, l
         assert set(digests.of(path)) == frame_blocks
 
 
+def test_a_file_system_that_cannot_map_files_is_read_instead(tmp_path, monkeypatch):
+    import mmap
+
+    paths, whole = _frames_run(tmp_path, (30,), (128, 160), {})
+    info = runfile.inspect_run(paths)
+
+    def refuse(*args, **kwargs):
+        raise OSError(19, "No such device")  # what mmap says on a file system without mapping
+
+    monkeypatch.setattr(mmap, "mmap", refuse)
+    digests = shotstore.BlockDigests()
+    with runfile.FrameReader(info, 16, digests) as reader:
+        got = reader.read(0, 16)
+        assert got.flags.writeable and not reader.map_files
+        np.testing.assert_array_equal(got, whole[:16])
+        np.testing.assert_array_equal(reader.read(16, 30), whole[16:30])
+    assert shotstore.file_checksum(paths[0], digests=digests.of(paths[0])) == shotstore.file_checksum(paths[0])
+
+
 @pytest.mark.parametrize("size", [0, 1, 2**20 - 1, 2**20, 2**20 + 1, 3 * 2**20 + 12345])
 def test_run_file_checksum_follows_its_published_definition(tmp_path, size):
     import hashlib

@@ -535,7 +535,11 @@ class FrameReader:
             if os.fstat(fh.fileno()).st_size < first + size:
                 raise InputError(f"{path}:frames", "a file shorter than its frames dataset says",
                                  "an intact run file (copy it again from the source)")
-            region = mmap.mmap(fh.fileno(), first - page + size, access=mmap.ACCESS_READ, offset=page)
+            try:
+                region = mmap.mmap(fh.fileno(), first - page + size, access=mmap.ACCESS_READ, offset=page)
+            except (OSError, ValueError):  # a file system that cannot map files (some FUSE mounts)
+                self.map_files = False
+                return None
         if hasattr(region, "madvise"):
             region.madvise(mmap.MADV_WILLNEED)  # the whole block read ahead at once when it is not cached
         frames = np.frombuffer(region, dtype=self.info.data_dtype, count=size // self.info.data_dtype.itemsize,
