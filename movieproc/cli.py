@@ -98,16 +98,17 @@ def _run(config, args):
         raise
     if args.dry_run:
         return
-    print(f"\nmovie:   {out / 'movie.zarr'}")
-    print(f"figures: {out / 'figures'}")
+    movie = out / "movie.zarr"
+    print(f"\nfigures: {out / 'figures'}")
     print(f"report:  {out / 'figures' / 'report.html'}")
     print(f"updated: {len(updated)} output(s)" + ("" if updated else " (everything was up to date)"))
-    movie = out / "movie.zarr"
     if movie.exists():
         from .summary import summarize_movie
 
         print()
-        print(summarize_movie(movie))
+        print(summarize_movie(movie))  # starts with "movie: PATH"
+    else:
+        print(f"movie:   {movie} (not written)")
     print("\nNote: " + SAFETY)
 
 
