@@ -314,7 +314,9 @@ def _report_fatal_signals():
     """Print every thread's Python stack on a fatal signal (``faulthandler``): a bus error (SIGBUS)
     from a run file cut short while its frames are mapped (``compute.map_frames``) then says where."""
     import faulthandler
+    import os
 
+    os.environ.setdefault("PYTHONFAULTHANDLER", "1")  # in the worker processes this run starts, too
     if not faulthandler.is_enabled():
         try:
             faulthandler.enable()

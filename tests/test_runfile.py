@@ -288,6 +288,38 @@ def test_frame_reader_gives_the_frames_and_hashes_the_bytes_it_reads(tmp_path, l
         assert set(digests.of(path)) == frame_blocks
 
 
+@pytest.mark.parametrize("map_files", [True, False])
+def test_files_storing_frames_in_different_dtypes_read_as_their_common_type(tmp_path, map_files):
+    # a uint16 file then an int32 one (40 kB and 80 kB frames): the run reads as int32; the first
+    # file goes through HDF5, which converts, the second is mapped or read directly
+    import h5py
+
+    first, _ = _frames_run(tmp_path, (20,), (128, 160), {}, name="a")
+    second, _ = _frames_run(tmp_path, (15,), (128, 160), {}, name="b")
+    rng = np.random.default_rng(8)
+    wide = rng.integers(-70000, 70000, (15, 128, 160), dtype=np.int32)
+    with h5py.File(second[0], "a") as h5:
+        del h5["frames"]
+        h5.create_dataset("frames", data=wide)
+    with h5py.File(first[0], "r") as h5:
+        narrow = h5["frames"][...]
+    info = runfile.inspect_run(first + second)
+    assert info.data_dtype == np.int32
+    assert not runfile.reads_directly(first[0], info.data_dtype) and runfile.reads_directly(second[0], info.data_dtype)
+    whole = np.concatenate([narrow.astype(np.int32), wide])
+    digests = shotstore.BlockDigests()
+    got = []
+    with runfile.FrameReader(info, 8, digests, map_files) as reader:
+        a = 0
+        while a < 35:
+            block = reader.read(a, min(a + 8, 35))
+            got.append(block.copy())
+            a += block.shape[0]
+    np.testing.assert_array_equal(np.concatenate(got), whole)
+    for path in first + second:
+        assert shotstore.file_checksum(path, digests=digests.of(path)) == shotstore.file_checksum(path)
+
+
 def test_a_file_system_that_cannot_map_files_is_read_instead(tmp_path, monkeypatch):
     import mmap
 

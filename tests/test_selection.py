@@ -215,15 +215,26 @@ def test_signal_directions_hold_a_rare_signal_but_not_a_distorted_shot():
 
 
 @pytest.mark.parametrize("shape, fraction, axis", [((40, 7), 0.1, 0), ((41, 7), 0.25, 0), ((5, 33), 0.2, 1),
-                                                  ((3,), 0.3, 0), ((200, 3), 0.0, 0), ((9, 4), 0.45, 0)])
-def test_trim_mean_is_scipys(shape, fraction, axis):
-    # reference: scipy.stats.trim_mean (same cut int(fraction * n) from each end), with ties
+                                                  ((3,), 0.3, 0), ((200, 3), 0.0, 0), ((9, 4), 0.45, 0),
+                                                  ((6, 5), 0.5, 0), ((7, 6), 0.2, -1)])
+@pytest.mark.parametrize("with_nan", [False, True])
+def test_trim_mean_is_scipys(shape, fraction, axis, with_nan):
+    # reference: scipy.stats.trim_mean (same cut int(fraction * n) from each end), with ties, NaN
+    # propagated, and NaN where the cut leaves nothing (fraction 0.5 of an even count)
+    import warnings
+
     rng = np.random.default_rng(sum(shape))
     values = rng.integers(0, 6, shape).astype(float) + rng.standard_normal(shape) * (rng.random(shape) < 0.5)
-    np.testing.assert_allclose(S.trim_mean(values, fraction, axis=axis),
-                               stats.trim_mean(values, fraction, axis=axis), rtol=1e-12, atol=1e-12)
+    if with_nan:
+        values.flat[rng.integers(0, values.size, 2)] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # mean of an empty slice, in both
+        np.testing.assert_allclose(S.trim_mean(values, fraction, axis=axis),
+                                   stats.trim_mean(values, fraction, axis=axis), rtol=1e-12, atol=1e-12)
 
 
-def test_trim_mean_refuses_to_cut_every_value():
-    with pytest.raises(ValueError, match="leaves none"):
-        S.trim_mean(np.arange(8.0), 0.5)
+def test_trim_mean_refuses_overlapping_cuts():
+    with pytest.raises(ValueError, match="overlap"):
+        S.trim_mean(np.arange(8.0), 0.7)
+    with pytest.raises(ValueError):
+        stats.trim_mean(np.arange(8.0), 0.7)  # as scipy does

@@ -48,7 +48,7 @@ class RunInfo:
     frame_shape : tuple or None
         (ny, nx) for frames mode.
     data_dtype : numpy.dtype
-        dtype of curves or frames.
+        dtype of curves or frames (native; the common type of the files' when they differ).
     optional : set of str
         Optional per-shot datasets present in every file.
     """
@@ -254,7 +254,7 @@ def inspect_run(paths) -> RunInfo:
         raise InputError(f"{where}:shots/pulse_id", "0 shots", "a run with at least one shot")
     optional = set.intersection(*(p.present for p in parts))
     return RunInfo(files=files, counts=counts, mode=first.mode, q=first.q, frame_shape=first.frame_shape,
-                   data_dtype=np.dtype(parts[-1].dtype), optional=optional)
+                   data_dtype=np.result_type(*(np.dtype(p.dtype) for p in parts)), optional=optional)
 
 
 def read_table(info: RunInfo, check: bool = True) -> dict:
@@ -358,19 +358,22 @@ def read_curves_raw(info: RunInfo, start: int, stop: int) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=64)
-def _frame_offsets(path: Path, stat_key: tuple) -> np.ndarray | None:
+def _frame_offsets(path: Path, stat_key: tuple, dtype: str | None = None) -> np.ndarray | None:
     """File offset (bytes) of every frame of an uncompressed, native-endian ``frames`` dataset whose
     frames each lie whole in one place (contiguous layout, or chunks of whole frames); None otherwise.
 
     Reading those bytes with ``os.preadv`` gives the values HDF5 would return, without HDF5's
     library-wide lock, so threads read frames in parallel. ``stat_key`` (size, mtime, inode) makes
-    a changed file planned again.
+    a changed file planned again. With ``dtype``, frames stored in another dtype are not planned
+    (HDF5 converts them to the run's dtype when it reads them).
     """
     with _open(path) as h5:
         ds = h5["frames"]
         if ds.id.get_create_plist().get_nfilters() > 0:  # compression, shuffle, checksums...
             return None
         if not ds.dtype.isnative or ds.ndim != 3 or ds.shape[0] == 0 or ds.external:
+            return None
+        if dtype is not None and ds.dtype != np.dtype(dtype):
             return None
         frame_bytes = int(np.prod(ds.shape[1:])) * ds.dtype.itemsize
         n = ds.shape[0]
@@ -390,10 +393,11 @@ def _frame_offsets(path: Path, stat_key: tuple) -> np.ndarray | None:
         return offsets
 
 
-def _plan(path: Path) -> np.ndarray | None:
+def _plan(path: Path, dtype=None) -> np.ndarray | None:
     st = path.stat()
     try:
-        return _frame_offsets(path, (st.st_size, st.st_mtime_ns, st.st_ino))
+        key = (st.st_size, st.st_mtime_ns, st.st_ino)
+        return _frame_offsets(path, key, None if dtype is None else np.dtype(dtype).str)
     except _H5_ERRORS:
         return None  # read through HDF5, which reports the problem with the file
 
@@ -426,10 +430,10 @@ def _read_planned(path: Path, offsets: np.ndarray, dest: np.ndarray, digests=Non
                 cut = end
 
 
-def reads_directly(path) -> bool:
-    """Whether :func:`read_frames` reads this file's frames with ``os.preadv`` (uncompressed, stored
-    whole), so that their bytes can be hashed as they are read."""
-    return _plan(Path(path)) is not None
+def reads_directly(path, dtype) -> bool:
+    """Whether :func:`read_frames` reads this file's frames with ``os.preadv`` or maps them
+    (uncompressed, stored whole, in the run's ``dtype``), so that their bytes can be hashed as they are read."""
+    return _plan(Path(path), dtype) is not None
 
 
 def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = None, digests=None) -> np.ndarray:
@@ -452,7 +456,7 @@ def read_frames(info: RunInfo, start: int, stop: int, out: np.ndarray | None = N
                          f"({n}, {', '.join(map(str, info.frames_shape))}), found {out.dtype} {out.shape}")
     for path, lo, hi, g in info.locate(start, stop):
         dest = out[g - start:g - start + (hi - lo)]
-        offsets = _plan(Path(path))
+        offsets = _plan(Path(path), info.data_dtype)
         if offsets is not None:
             _read_planned(Path(path), offsets[lo:hi], dest, digests)
             continue
@@ -521,7 +525,7 @@ class FrameReader:
         if not parts:
             return None
         path, lo, hi, _ = parts[0]  # the frames in the file of the first: up to its end
-        offsets = _plan(Path(path))
+        offsets = _plan(Path(path), self.info.data_dtype)
         if offsets is None:
             return None
         frame_bytes = int(np.prod(self.info.frames_shape)) * self.info.data_dtype.itemsize

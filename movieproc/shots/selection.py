@@ -151,17 +151,24 @@ def reason_counts(flags):
 def trim_mean(values, fraction: float, axis: int = 0) -> np.ndarray:
     """Mean along ``axis`` after cutting ``int(fraction * n)`` values from each end of the sorted values.
 
-    The definition of ``scipy.stats.trim_mean`` (and checked against it in the tests), here
-    because importing ``scipy.stats`` costs about half a second of every run for these lines.
+    The definition and behaviour of ``scipy.stats.trim_mean`` (checked against it in the tests):
+    NaN where a NaN is among the values, NaN (with numpy's warning) when the cut leaves nothing, an
+    error when the cuts overlap. Here because importing ``scipy.stats`` costs about half a second
+    of every run for these lines.
     """
     a = np.asarray(values)
     n = a.shape[axis]
     low = int(fraction * n)
     high = n - low
-    if low >= high:
-        raise ValueError(f"cutting {low} of {n} values from each end leaves none")
+    if low > high:
+        raise ValueError(f"cutting {low} of {n} values from each end: the cuts overlap")
+    if n == 0:
+        return np.mean(a, axis=axis)
     part = np.partition(a, (low, high - 1), axis=axis)
-    return np.mean(np.take(part, np.arange(low, high), axis=axis), axis=axis)
+    out = np.mean(np.take(part, np.arange(low, high), axis=axis), axis=axis)
+    if a.dtype.kind in "fc":
+        out = np.where(np.isnan(a).any(axis=axis), np.nan, out)
+    return out
 
 
 def _half_means(d):

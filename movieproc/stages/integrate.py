@@ -435,7 +435,7 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     # second read of the file cost as much as a third of the integration); the rest of those files
     # afterwards. Files read through HDF5 (compressed...) are hashed whole in a thread beside the
     # set-up and the integration (xxhash releases the GIL).
-    direct = {str(f) for f in info.files if runfile.reads_directly(f)}
+    direct = {str(f) for f in info.files if runfile.reads_directly(f, info.data_dtype)}
     with ThreadPoolExecutor(max_workers=1) as hashing:
         others = hashing.submit(lambda: {str(f): shotstore.file_checksum(f) for f in info.files
                                          if str(f) not in direct})
