@@ -116,6 +116,28 @@ def test_results_do_not_depend_on_the_scheduler_nor_on_how_frames_are_read(tmp_p
     assert first.group.attrs["checksums"] == {str(run): file_checksum(run)}
 
 
+@pytest.mark.slow
+def test_frames_integrated_in_worker_processes_give_the_threaded_store(tmp_path):
+    # a LocalCluster of 2 worker processes: the tasks map, integrate and hash the frames in other
+    # processes and send their block digests back pickled; curves and checksum as with threads
+    from movieproc import parallel
+
+    rng = np.random.default_rng(4)
+    det = _detector(mask_file=None)
+    photon = np.full(72, 11.5)
+    run = tmp_path / "run.h5"
+    _write_run(run, _frames(det, 72, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
+    _integrate([run], tmp_path / "threads.zarr", det, COMPUTE)
+    try:
+        with parallel.compute_settings({"memory_per_worker": "1GB"}):
+            _integrate([run], tmp_path / "cluster.zarr", det, dict(COMPUTE, scheduler="local-cluster"))
+    finally:
+        assert parallel.close_local_clusters() == 1
+    threads, cluster = open_shots(tmp_path / "threads.zarr"), open_shots(tmp_path / "cluster.zarr")
+    np.testing.assert_array_equal(threads.curves(0, 72), cluster.curves(0, 72))
+    assert cluster.group.attrs["checksums"] == threads.group.attrs["checksums"] == {str(run): file_checksum(run)}
+
+
 def test_photon_energy_from_the_electron_energy_and_from_the_config(tmp_path):
     rng = np.random.default_rng(2)
     electron = 14.0 * (1 + 0.0005 * rng.standard_normal(16))
