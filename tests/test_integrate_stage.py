@@ -97,13 +97,19 @@ def test_two_files_of_uint16_frames_with_dark_hot_pixels_mask_and_saturation(tmp
     assert zarr.open_group(str(out))["pixel_count"].shape == (40,)
 
 
-def test_results_do_not_depend_on_the_scheduler_nor_on_how_frames_are_read(tmp_path):
-    # 72 frames of 36 kB (2.5 MiB): whole checksum blocks inside the frames, hashed as they are read
-    rng = np.random.default_rng(1)
+def _run_of_72_frames(tmp_path, seed):
+    """72 int32 frames of 36 kB (2.5 MiB): whole 1 MiB checksum blocks inside the frames; (file, detector)."""
+    rng = np.random.default_rng(seed)
     det = _detector(mask_file=None)
     photon = np.full(72, 11.5)
     run = tmp_path / "run.h5"
     _write_run(run, _frames(det, 72, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
+    return run, det
+
+
+def test_results_do_not_depend_on_the_scheduler_nor_on_how_frames_are_read(tmp_path):
+    # the run file hashed from the bytes the integration reads (mapped or read), whatever the scheduler
+    run, det = _run_of_72_frames(tmp_path, 1)
     _integrate([run], tmp_path / "a.zarr", det, COMPUTE)
     _integrate([run], tmp_path / "b.zarr", det,
                {"workers": 1, "scheduler": "synchronous", "chunk_shots": 16, "progress": False})
@@ -122,11 +128,7 @@ def test_frames_integrated_in_worker_processes_give_the_threaded_store(tmp_path)
     # processes and send their block digests back pickled; curves and checksum as with threads
     from movieproc import parallel
 
-    rng = np.random.default_rng(4)
-    det = _detector(mask_file=None)
-    photon = np.full(72, 11.5)
-    run = tmp_path / "run.h5"
-    _write_run(run, _frames(det, 72, photon, rng, photons_per_pixel=100.0).astype(np.int32), photon)
+    run, det = _run_of_72_frames(tmp_path, 4)
     _integrate([run], tmp_path / "threads.zarr", det, COMPUTE)
     try:
         with parallel.compute_settings({"memory_per_worker": "1GB"}):
