@@ -431,9 +431,9 @@ def run(inputs: dict, out: Path, config: dict) -> None:
     if info.mode != "frames":
         raise InputError(info.files[0], "pre-integrated curves",
                          "detector frames (N, ny, nx) for the integrate stage (curves go through ingest)")
-    # Checksums: frames read with os.preadv are hashed from the bytes the integration reads (a
-    # second read of the file cost as much as a third of the integration); the rest of those files
-    # afterwards. Files read through HDF5 (compressed...) are hashed whole in a thread beside the
+    # Checksums: frames mapped or read with os.preadv are hashed from the bytes the integration
+    # reads (a second read of the file cost as much as a third of the integration); the rest of those
+    # files afterwards. Files read through HDF5 (compressed...) are hashed whole in a thread beside the
     # set-up and the integration (xxhash releases the GIL).
     direct = {str(f) for f in info.files if runfile.reads_directly(f, info.data_dtype)}
     with ThreadPoolExecutor(max_workers=1) as hashing:
